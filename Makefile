@@ -1,0 +1,34 @@
+# Every target creates .venv and installs what it needs, so a fresh clone needs nothing by hand.
+PY      ?= python3
+VENV    := .venv
+BIN     := $(VENV)/bin
+STAMP   := $(VENV)/.installed
+CORES   ?= 2
+
+.PHONY: demo test bench lint design clean
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PY) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/snakemake --cores $(CORES) --scheduler greedy
+	@$(BIN)/python -m emulant.cli where --config config/config.yaml
+
+design: $(STAMP)
+	$(BIN)/snakemake design --cores $(CORES) --scheduler greedy
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+bench: $(STAMP)
+	$(BIN)/python -m bench.run
+
+lint: $(STAMP)
+	$(BIN)/ruff check emulant synthetic_cohort scripts tests bench
+	$(BIN)/snakemake --lint --cores 1
+
+clean:
+	rm -rf results .snakemake

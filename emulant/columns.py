@@ -1,0 +1,44 @@
+"""Column names of the analysis tables: the one place that spells them.
+
+cohort.parquet (one row per person):
+    person_id, arm (arm name), treated (1 for ``strategies.treated``, else 0), time_zero (date),
+    one column per covariate (its ``name``) and ``<name>_missing`` (0/1) for every covariate whose
+    value may be missing (``Covariate.may_be_missing``), filled as CONTRACTS §3a says,
+    end_day, end_reason                       -- the primary time-to-event outcome (if any)
+    end_day__<o>, end_reason__<o>             -- every time-to-event outcome o (primary included)
+    value__<m>, measured__<m>, baseline__<m>  -- every measured outcome m (value NaN when unmeasured)
+    coverage_end_day                          -- last day of the merged coverage period holding day 0
+weights.parquet: person_id, arm, propensity, weight_<ESTIMAND> for each estimand of the protocol.
+"""
+
+from __future__ import annotations
+
+END_REASONS = ("outcome", "competing", "coverage_end", "administrative_end", "max_follow_up")
+
+
+def missing_flag(covariate: str) -> str:
+    return f"{covariate}_missing"
+
+
+def end_day(outcome: str) -> str:
+    return f"end_day__{outcome}"
+
+
+def end_reason(outcome: str) -> str:
+    return f"end_reason__{outcome}"
+
+
+def value(measure: str) -> str:
+    return f"value__{measure}"
+
+
+def measured(measure: str) -> str:
+    return f"measured__{measure}"
+
+
+def baseline(measure: str) -> str:
+    return f"baseline__{measure}"
+
+
+def weight(estimand: str) -> str:
+    return f"weight_{estimand}"
