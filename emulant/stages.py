@@ -1,0 +1,178 @@
+"""One function per workflow rule: read the rule's files, call the library, write its outputs.
+
+Each takes ``(input, output, params)`` as Snakemake passes them (anything with attribute
+access works, so tests call them with ``types.SimpleNamespace``). :func:`run` is the scripts'
+entry: it sends the log to the rule's log file and turns our errors into a plain message and
+exit code 2, never a traceback. Outputs are written to a temporary name and renamed, so a
+failure never leaves a half-written file behind.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import os
+import sys
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from emulant.protocol import load_protocol
+
+log = logging.getLogger("emulant")
+
+
+# ----------------------------------------------------------------------------- writing
+
+
+@contextlib.contextmanager
+def atomic(path: str | Path):
+    """Yield a temporary path beside ``path``; rename it into place only on success."""
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    tmp = p.with_name(f".{p.name}.tmp{os.getpid()}")
+    try:
+        yield tmp
+        os.replace(tmp, p)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def write_json(path: str | Path, obj: Any) -> None:
+    with atomic(path) as tmp:
+        tmp.write_text(json.dumps(obj, indent=2, sort_keys=False, default=str) + "\n", encoding="utf-8")
+
+
+def write_csv(path: str | Path, df: pd.DataFrame) -> None:
+    with atomic(path) as tmp:
+        df.to_csv(tmp, index=False, lineterminator="\n", float_format="%.10g")
+
+
+def write_parquet(path: str | Path, df: pd.DataFrame) -> None:
+    with atomic(path) as tmp:
+        df.to_parquet(tmp, index=False)
+
+
+def _protocol_path(params: Any) -> str:
+    return str(params.protocol)
+
+
+# ----------------------------------------------------------------------------- stages
+
+
+def synthesize_extract(input: Any, output: Any, params: Any) -> None:
+    from synthetic_cohort.generate import write_synthetic
+
+    write_synthetic(params.out, persons=int(params.persons), seed=int(params.seed), fmt="parquet")
+
+
+def check_extract(input: Any, output: Any, params: Any) -> None:
+    from emulant.extract import check_extract as check
+
+    protocol = load_protocol(_protocol_path(params))
+    report = check(params.extract, protocol, dict(params.duckdb))
+    for w in report.get("warnings", []):
+        log.warning("%s", w)
+    write_json(output.check, report)
+
+
+def build_cohort(input: Any, output: Any, params: Any) -> None:
+    from emulant.cohort import build_cohort as build
+    from emulant.extract import open_extract
+
+    protocol = load_protocol(_protocol_path(params))
+    extract = open_extract(params.extract, protocol, dict(params.duckdb))
+    res = build(extract, protocol)
+    log.info("attrition:\n%s", res.attrition.to_string(index=False))
+    write_csv(output.attrition, res.attrition)
+    write_parquet(output.cohort, res.cohort)
+
+
+def fit_weights(input: Any, output: Any, params: Any) -> None:
+    from emulant.weights import fit_weights as fit
+
+    protocol = load_protocol(_protocol_path(params))
+    weights, positivity = fit(pd.read_parquet(input.cohort), protocol)
+    write_parquet(output.weights, weights)
+    write_json(output.positivity, positivity)
+
+
+def check_balance(input: Any, output: Any, params: Any) -> None:
+    from emulant.balance import balance_table
+
+    protocol = load_protocol(_protocol_path(params))
+    table = balance_table(pd.read_parquet(input.cohort), pd.read_parquet(input.weights), protocol)
+    write_csv(output.balance, table)
+
+
+def estimate_effects(input: Any, output: Any, params: Any) -> None:
+    from emulant.effects import estimate_effects as estimate
+
+    protocol = load_protocol(_protocol_path(params))
+    res = estimate(pd.read_parquet(input.cohort), protocol, workers=int(params.workers),
+                   progress=sys.stderr.isatty())
+    write_csv(output.estimates, res.estimates)
+    write_csv(output.curves, res.curves)
+    write_json(output.bootstrap, res.bootstrap)
+
+
+def render_report(input: Any, output: Any, params: Any) -> None:
+    from emulant import provenance
+    from emulant.report import render_report as render
+
+    protocol = load_protocol(_protocol_path(params))
+    kind = "design" if params.design else "analysis"
+    manifest = provenance.build_manifest(protocol, params.results, params.reports, kind=kind)
+    comparison = provenance.compare_with_previous(params.reports, manifest, params.results)
+    with atomic(output.report) as tmp:
+        render(params.results, protocol, tmp, manifest=manifest, comparison=comparison,
+               design=bool(params.design))
+    write_json(output.manifest, manifest)
+
+
+def archive_report(input: Any, output: Any, params: Any) -> None:
+    from emulant import provenance
+
+    entry = provenance.archive_run(input.manifest, input.report, params.results, params.reports)
+    log.info("archived to %s", entry["folder"])
+    write_json(output.archived, entry)
+
+
+# ----------------------------------------------------------------------------- entry
+
+
+def user_errors() -> tuple[type[BaseException], ...]:
+    """The exceptions a user's input can cause: reported as a message, never a traceback."""
+    from emulant.protocol import ProtocolError
+
+    errors: list[type[BaseException]] = [ProtocolError]
+    for mod, name in (("emulant.extract", "ExtractError"), ("emulant.cohort", "CohortError"),
+                      ("emulant.effects", "EstimationError"), ("emulant.bootstrap", "BootstrapError"),
+                      ("emulant.paths", "WorkflowConfigError")):
+        with contextlib.suppress(ImportError, AttributeError):
+            errors.append(getattr(__import__(mod, fromlist=[name]), name))
+    return tuple(errors)
+
+
+def run(snakemake: Any, stage: Callable[[Any, Any, Any], None]) -> None:
+    """Run one stage under Snakemake: log to the rule's log, our errors as exit code 2."""
+    logfile = snakemake.log[0] if len(snakemake.log) else None
+    handlers: list[logging.Handler] = [logging.StreamHandler(sys.stderr)]
+    if logfile:
+        Path(logfile).parent.mkdir(parents=True, exist_ok=True)
+        handlers.append(logging.FileHandler(logfile, mode="w", encoding="utf-8"))
+    logging.basicConfig(level=logging.INFO, handlers=handlers, force=True,
+                        format="%(asctime)s %(levelname)s %(message)s")
+    logging.captureWarnings(True)
+    t0 = time.perf_counter()
+    try:
+        stage(snakemake.input, snakemake.output, snakemake.params)
+    except user_errors() as exc:
+        log.error("rule %s stopped: %s", snakemake.rule, exc)
+        sys.exit(2)
+    log.info("rule %s done in %.1f s", snakemake.rule, time.perf_counter() - t0)

@@ -1,0 +1,24 @@
+# Paths only: the study id, the input files, and where each result lives. No statistics here.
+from pathlib import Path
+
+from emulant import paths as emulant_paths
+
+SYNTHETIC_DEFAULT = "resources/synthetic"
+EXTRACT = config["extract"]
+PROTOCOL = config["protocol"]
+IS_SYNTHETIC = Path(EXTRACT) == Path(SYNTHETIC_DEFAULT)
+STUDY = emulant_paths.study_id(PROTOCOL)
+RESULTS = f"{config.get('results', 'results')}/{STUDY}"
+REPORTS = f"{config.get('reports', 'reports')}/{STUDY}"
+EXTRACT_FILES = emulant_paths.extract_files(EXTRACT, synthetic=IS_SYNTHETIC)
+PROTOCOL_FILES = emulant_paths.protocol_files(PROTOCOL)
+DUCKDB = config.get("duckdb", {})
+WORKERS = config.get("workers", 2)
+
+
+def result(name):
+    return f"{RESULTS}/{name}"
+
+
+def logfile(name):
+    return f"{RESULTS}/logs/{name}.log"

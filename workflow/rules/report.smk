@@ -1,0 +1,77 @@
+rule render_report:
+    input:
+        check=result("extract_check.json"),
+        attrition=result("attrition.csv"),
+        cohort=result("cohort.parquet"),
+        weights=result("weights.parquet"),
+        positivity=result("positivity.json"),
+        balance=result("balance.csv"),
+        estimates=result("estimates.csv"),
+        curves=result("curves.csv"),
+        bootstrap=result("bootstrap.json"),
+        protocol=PROTOCOL_FILES,
+    output:
+        report=result("report.html"),
+        manifest=result("manifest.json"),
+    params:
+        protocol=PROTOCOL,
+        results=RESULTS,
+        reports=REPORTS,
+        design=False,
+    log:
+        logfile("render_report"),
+    script:
+        "../../scripts/render_report.py"
+
+
+rule archive_report:
+    input:
+        report=result("report.html"),
+        manifest=result("manifest.json"),
+    output:
+        archived=result("archive.json"),
+    params:
+        results=RESULTS,
+        reports=REPORTS,
+    log:
+        logfile("archive_report"),
+    script:
+        "../../scripts/archive_report.py"
+
+
+rule render_design:
+    input:
+        check=result("extract_check.json"),
+        attrition=result("attrition.csv"),
+        cohort=result("cohort.parquet"),
+        weights=result("weights.parquet"),
+        positivity=result("positivity.json"),
+        balance=result("balance.csv"),
+        protocol=PROTOCOL_FILES,
+    output:
+        report=result("design/report.html"),
+        manifest=result("design/manifest.json"),
+    params:
+        protocol=PROTOCOL,
+        results=RESULTS,
+        reports=REPORTS,
+        design=True,
+    log:
+        logfile("render_design"),
+    script:
+        "../../scripts/render_report.py"
+
+
+rule archive_design:
+    input:
+        report=result("design/report.html"),
+        manifest=result("design/manifest.json"),
+    output:
+        archived=result("design_archive.json"),
+    params:
+        results=RESULTS,
+        reports=REPORTS,
+    log:
+        logfile("archive_design"),
+    script:
+        "../../scripts/archive_report.py"

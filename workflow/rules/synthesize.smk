@@ -1,0 +1,15 @@
+# The invented demo extract, written only when `extract` is the demo default.
+if IS_SYNTHETIC:
+
+    rule synthesize_extract:
+        output:
+            tables=EXTRACT_FILES,
+            truth=f"{EXTRACT}/truth.json",
+        params:
+            out=EXTRACT,
+            persons=config.get("synthetic", {}).get("persons", 20000),
+            seed=config.get("synthetic", {}).get("seed", 20261201),
+        log:
+            f"{EXTRACT}/synthesize.log",
+        script:
+            "../../scripts/synthesize_extract.py"
