@@ -265,7 +265,7 @@ class _Collector:
         self.problems: list[str] = []
 
     def add(self, key: str, msg: str) -> None:
-        self.problems.append(f"{key}: {msg}")
+        self.problems.append(f"{key or '(top level)'}: {msg}")
 
     def mapping(self, node: Any, key: str, known: tuple[str, ...], required: tuple[str, ...] = ()) -> dict:
         if node is None:
@@ -420,6 +420,9 @@ def _parse_concepts(c: _Collector, node: Any, base: Path) -> dict[str, Concept]:
         where = []
         for col, val in where_node.items():
             vals = val if isinstance(val, list) else [val]
+            if not vals or not all(isinstance(v, str | int | float) and not isinstance(v, bool) for v in vals):
+                c.add(f"{key}.where.{col}", f"expected a value or a list of values, got {val!r}")
+                continue
             where.append((str(col), tuple(str(v) for v in vals)))
         out[str(name)] = Concept(str(name), source, codes, match or "prefix", tuple(where), desc, file)
     return out
@@ -629,7 +632,8 @@ def parse_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | Non
     r = c.mapping(top.get("report"), "report", ("min_cell",))
     report = ReportSettings(c.integer(r.get("min_cell"), "report.min_cell", 5, 1) or 5)
 
-    ec = c.mapping(top.get("extract_columns"), "extract_columns", tuple((top.get("extract_columns") or {}).keys()))
+    ec_node = top.get("extract_columns")
+    ec = c.mapping(ec_node, "extract_columns", tuple(ec_node) if isinstance(ec_node, dict) else ())
     extract_columns: dict[str, dict[str, str]] = {}
     for table, ren in ec.items():
         if not isinstance(ren, dict) or not all(isinstance(v, str) for v in ren.values()):

@@ -151,7 +151,9 @@ def compare_with_previous(reports_dir: str | Path, manifest: dict[str, Any],
     if (folder / "attrition.csv").is_file() and (results / "attrition.csv").is_file():
         a0 = pd.read_csv(folder / "attrition.csv")[["step", "remaining"]]
         a1 = pd.read_csv(results / "attrition.csv")[["step", "remaining"]]
-        m = a1.merge(a0, on="step", how="outer", suffixes=("_current", "_previous"), sort=False)
+        m = a1.merge(a0, on="step", how="left", suffixes=("_current", "_previous"))
+        gone = a0[~a0.step.isin(a1.step)].rename(columns={"remaining": "remaining_previous"})
+        m = pd.concat([m, gone.assign(remaining_current=pd.NA)], ignore_index=True)
         out["attrition"] = [{"step": r.step, "previous": _int(r.remaining_previous), "current": _int(r.remaining_current)}
                             for r in m.itertuples()]
     if manifest.get("kind") != "design" and (folder / "estimates.csv").is_file() and (results / "estimates.csv").is_file():

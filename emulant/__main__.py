@@ -1,0 +1,3 @@
+from emulant.cli import main
+
+raise SystemExit(main())

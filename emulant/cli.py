@@ -1,0 +1,258 @@
+"""The ``emulant`` command: check a protocol against an extract, write the invented demo extract,
+and say where a run's results and reports are.
+
+Every error a user can cause is printed as a list of one-line problems and the command exits 2;
+no traceback reaches the terminal. An unexpected failure is printed in one line naming what was
+being done, and also exits 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Callable, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+EXIT_OK = 0
+EXIT_PROBLEMS = 2
+
+
+class _Failed(Exception):
+    """Internal: a stage failed; its message is already printed."""
+
+
+def _problems(title: str, problems: Sequence[str]) -> None:
+    print(f"{title}: {len(problems)} problem(s)", file=sys.stderr)
+    for p in problems:
+        print(f"  - {p}", file=sys.stderr)
+
+
+def _stage(doing: str, fn: Callable[[], Any], expected: tuple[type[BaseException], ...] = ()) -> Any:
+    """Run one stage; ``expected`` exceptions pass, any other becomes one line naming ``doing``."""
+    try:
+        return fn()
+    except (KeyboardInterrupt, _Failed, *expected):
+        raise
+    except Exception as exc:  # noqa: BLE001 - the user sees one line, never a traceback
+        msg = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+        print(f"error while {doing}: {type(exc).__name__}: {msg}", file=sys.stderr)
+        raise _Failed from None
+
+
+def _settings(args: argparse.Namespace) -> dict[str, Any]:
+    s: dict[str, Any] = {}
+    if args.threads is not None:
+        s["threads"] = args.threads
+    if args.memory_limit:
+        s["memory_limit"] = args.memory_limit
+    if args.temp_dir:
+        s["temp_directory"] = args.temp_dir
+    return s
+
+
+def _print_check(result: Mapping[str, Any]) -> None:
+    import pandas as pd
+
+    rows = [{"table": t, "file": Path(v["file"]).name, "rows": v["rows"],
+             "first date": v["date_min"] or "", "last date": v["date_max"] or ""}
+            for t, v in result["tables"].items()]
+    print(f"Extract {result['extract']}: {len(rows)} table(s), person_id as {result['person_id_type']}")
+    print(pd.DataFrame(rows).to_string(index=False))
+    excluded = {t: v for t, v in result["implausible"].items() if v["before_birth"] or v["after_death"]}
+    if excluded:
+        print("\nRows dated before birth or after death (excluded from the analysis):")
+        for t, v in excluded.items():
+            ex = "; ".join(f"person_id {e['person_id']} on {e['date']} ({e['reason'].replace('_', ' ')})"
+                           for e in v["examples"])
+            print(f"  {t}: {v['before_birth']} before birth, {v['after_death']} after death; e.g. {ex}")
+    _print_warnings(result.get("warnings", []))
+
+
+def _print_warnings(warnings: Sequence[str]) -> None:
+    if warnings:
+        print(f"\nWarnings ({len(warnings)}):")
+        for w in warnings:
+            print(f"  - {w}")
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    """Validate the protocol and the extract, then print the attrition of the eligibility steps."""
+    from emulant.extract import ExtractError, check_extract, open_extract
+    from emulant.protocol import ProtocolError, load_protocol
+
+    protocol, failed = None, False
+    try:
+        protocol = _stage(f"reading the protocol {args.protocol}", lambda: load_protocol(args.protocol),
+                          (ProtocolError,))
+    except ProtocolError as exc:
+        _problems(f"protocol {args.protocol}", exc.problems)
+        failed = True
+    try:  # the extract is checked even when the protocol failed, so every problem shows at once
+        result = _stage(f"checking the extract {args.extract}",
+                        lambda: check_extract(args.extract, protocol, _settings(args)), (ExtractError,))
+    except ExtractError as exc:
+        _problems(f"extract {args.extract}", exc.problems)
+        return EXIT_PROBLEMS
+    if failed:
+        return EXIT_PROBLEMS
+    if args.save_check:
+        Path(args.save_check).parent.mkdir(parents=True, exist_ok=True)
+        Path(args.save_check).write_text(json.dumps(result, indent=2, default=str) + "\n")
+    print(f"Protocol {args.protocol}: study {protocol.study.id}")
+    _print_check(result)
+
+    def steps():
+        from emulant.cohort import CohortError, build_cohort
+
+        extract = open_extract(args.extract, protocol, _settings(args))
+        try:
+            return build_cohort(extract, protocol, steps_only=True), None
+        except CohortError as exc:
+            return None, exc
+
+    cohort, error = _stage("running the eligibility steps", steps)
+    if error is not None:
+        _problems("eligibility", getattr(error, "problems", None) or [str(error)])
+        return EXIT_PROBLEMS
+    print("\nAttrition (eligibility steps in order):")
+    print(cohort.attrition.to_string(index=False))
+    return EXIT_OK
+
+
+def cmd_synth(args: argparse.Namespace) -> int:
+    """Write the invented demo extract, its protocol and its truth."""
+    if args.persons < 1:
+        _problems("synth", [f"--persons: expected a whole number >= 1, got {args.persons}"])
+        return EXIT_PROBLEMS
+
+    def run():
+        from synthetic_cohort.generate import write_synthetic
+
+        return write_synthetic(Path(args.out), persons=args.persons, seed=args.seed, fmt=args.format)
+
+    written = _stage(f"writing the synthetic extract to {args.out}", run)
+    print(f"Wrote the synthetic extract ({args.persons} persons, seed {args.seed}, {args.format}):")
+    if isinstance(written, Mapping):
+        items = [f"{k}: {v}" for k, v in written.items()]
+    elif isinstance(written, list | tuple | set):
+        items = [str(x) for x in written]
+    else:
+        items = [str(f) for f in sorted(Path(args.out).rglob("*")) if f.is_file()]
+    for item in items:
+        print(f"  {item}")
+    return EXIT_OK
+
+
+def _read_config(path: Path) -> dict[str, Any]:
+    import yaml
+
+    if not path.is_file():
+        raise _ConfigError([f"config file {path} does not exist"])
+    try:
+        data = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+    except yaml.YAMLError as exc:
+        raise _ConfigError([f"{path}: not valid YAML ({str(exc).splitlines()[0]})"]) from None
+    if not isinstance(data, dict):
+        raise _ConfigError([f"{path}: expected a mapping with keys extract, protocol, results, reports"])
+    if not data.get("protocol"):
+        raise _ConfigError([f"{path}: key protocol is missing (the protocol file)"])
+    return data
+
+
+class _ConfigError(Exception):
+    def __init__(self, problems: list[str]):
+        self.problems = problems
+        super().__init__("; ".join(problems))
+
+
+def latest_report(reports_dir: Path) -> str | None:
+    """The ``report`` path of the ledger's last line, or None when there is no ledger yet."""
+    ledger = reports_dir / "ledger.jsonl"
+    if not ledger.is_file():
+        return None
+    lines = [ln for ln in ledger.read_text(encoding="utf-8").splitlines() if ln.strip()]
+    if not lines:
+        return None
+    entry = json.loads(lines[-1])
+    return str(entry["report"]) if isinstance(entry, dict) and entry.get("report") else None
+
+
+def cmd_where(args: argparse.Namespace) -> int:
+    """Print the results folder of the configured study and its newest archived report."""
+    from emulant.protocol import ProtocolError, load_protocol
+
+    try:
+        cfg = _read_config(Path(args.config))
+        protocol = _stage(f"reading the protocol {cfg['protocol']}", lambda: load_protocol(cfg["protocol"]),
+                          (ProtocolError,))
+    except _ConfigError as exc:
+        _problems(f"config {args.config}", exc.problems)
+        return EXIT_PROBLEMS
+    except ProtocolError as exc:
+        _problems(f"protocol {cfg['protocol']}", exc.problems)
+        return EXIT_PROBLEMS
+    sid = protocol.study.id
+    results = Path(cfg.get("results") or "results") / sid
+    reports = Path(cfg.get("reports") or "reports") / sid
+    report = _stage(f"reading {reports / 'ledger.jsonl'}", lambda: latest_report(reports))
+    print(f"Study {sid}")
+    print(f"  results: {results}")
+    print(f"  latest report: {report}" if report else f"  latest report: none yet ({reports / 'ledger.jsonl'} not found)")
+    return EXIT_OK
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="emulant",
+        description="Emulate a target trial from registry-style extracts. The workflow runs with "
+                    "snakemake; this command checks inputs and writes the demo extract.")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    ck = sub.add_parser("check", help="validate an extract and a protocol, print the attrition",
+                        description="Validate the protocol and the extract (every problem listed "
+                                    "at once), then run the eligibility steps alone and print "
+                                    "the attrition. Exit 0, or 2 when there is any problem.")
+    ck.add_argument("--extract", required=True, metavar="PATH", help="folder of the extract's tables")
+    ck.add_argument("--protocol", required=True, metavar="FILE", help="the protocol YAML file")
+    ck.add_argument("--save-check", metavar="FILE", help="also write the check as JSON (extract_check.json)")
+    ck.add_argument("--threads", type=int, metavar="N", help="DuckDB threads (default 2)")
+    ck.add_argument("--memory-limit", metavar="SIZE", help="DuckDB memory limit, e.g. 4GB")
+    ck.add_argument("--temp-dir", metavar="DIR", help="where DuckDB spills to disk")
+    ck.set_defaults(func=cmd_check)
+
+    sy = sub.add_parser("synth", help="write the invented demo extract, its protocol and truth",
+                        description="Write the invented synthetic registry extract, the demo "
+                                    "protocol with its code lists, and truth.json.")
+    sy.add_argument("--persons", type=int, default=20000, metavar="N", help="persons (default 20000)")
+    sy.add_argument("--seed", type=int, default=20261201, metavar="S", help="random seed (default 20261201)")
+    sy.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    sy.add_argument("--format", choices=("parquet", "csv"), default="parquet",
+                    help="table file format (default parquet)")
+    sy.set_defaults(func=cmd_synth)
+
+    wh = sub.add_parser("where", help="print where the configured study's results and reports are",
+                        description="Read the run configuration and print the study's results "
+                                    "folder and its newest archived report.")
+    wh.add_argument("--config", default="config/config.yaml", metavar="FILE",
+                    help="the run configuration (default config/config.yaml)")
+    wh.set_defaults(func=cmd_where)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of ``emulant``; returns the exit code (0, or 2 on any problem)."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # --help (0) or a usage error (2): argparse has printed it
+        return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_PROBLEMS
+    try:
+        return args.func(args)
+    except _Failed:
+        return EXIT_PROBLEMS
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

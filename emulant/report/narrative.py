@@ -1,0 +1,242 @@
+"""Words generated from the protocol and the results: the trial-versus-emulation table, the
+warnings panel and the assumptions, each tied to this run's evidence."""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import pandas as pd
+
+from emulant.protocol import MeasuredOutcome, Protocol, outcome_name
+from emulant.report import disclosure as dc
+from emulant.report import fmt
+
+COMPONENTS = (
+    ("eligibility", "Eligibility criteria"),
+    ("strategies", "Treatment strategies"),
+    ("assignment", "Assignment procedure"),
+    ("time_zero", "Time zero (start of follow-up)"),
+    ("follow_up", "Follow-up period"),
+    ("outcome", "Outcome"),
+    ("contrast", "Causal contrast"),
+    ("analysis", "Analysis plan"),
+)
+FEW_EVENTS = 10  # events per arm below which a warning is raised (common practice, no single source)
+ESS_SHARE, ESS_MIN = 0.25, 100  # ESS below 25% of the arm's n, or below 100, is small (our choice)
+
+
+def _concept(p: Protocol, name: str) -> str:
+    c = p.concepts.get(name)
+    if c is None:
+        return name
+    if not c.codes:
+        return f"{name} (the {c.source} table)"
+    where = "".join(f", {k} in {{{', '.join(v)}}}" for k, v in c.where)
+    return f"{name} ({c.source}: {', '.join(c.codes)}; {c.match} match{where})"
+
+
+def _outcome(p: Protocol, o: str | MeasuredOutcome) -> str:
+    if isinstance(o, MeasuredOutcome):
+        chg = ", change from baseline" if o.change_from_baseline else ""
+        return (f"{_concept(p, o.measure)} measured at day {o.at_day} ± {o.tolerance_days}{chg}; "
+                f"missing values: {o.missing.replace('_', ' ')}")
+    return f"{_concept(p, o)}, first record from day 1"
+
+
+def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | None,
+                   design: bool) -> list[dict]:
+    """One row per trial component: the protocol's free text and what this run did."""
+    tt = dict(p.study.target_trial)
+    e, s, f, a = p.eligibility, p.strategies, p.follow_up, p.analysis
+    age = ""
+    if e.age_min is not None or e.age_max is not None:
+        age = f"Age {e.age_min if e.age_min is not None else 0}–{e.age_max or 'any'} years at time zero. "
+    req = "; ".join(f"Requires {_concept(p, c.concept)} in {fmt.window(c.window)}" for c in e.require)
+    exc = "; ".join(f"Excludes {_concept(p, c.concept)} in {fmt.window(c.window)}" for c in e.exclude)
+    flow = ""
+    if attrition:
+        flow = (f" {attrition[-1]['remaining']} of {attrition[0]['remaining']} persons in the "
+                f"extract were eligible ({len(attrition)} steps, see the attrition table).")
+    arms = "; ".join(f"{arm.name}: initiate {_concept(p, arm.initiate)}" for arm in s.arms)
+    did = {
+        "eligibility": (f"Time zero between {e.entry_start} and {e.entry_end}. {age}Continuous coverage "
+                        f"for {e.coverage_before_days} days before time zero. "
+                        f"{req + '. ' if req else ''}{exc + '. ' if exc else ''}".strip() + flow),
+        "strategies": (f"{arms}. New users: no record of either arm's concept in the "
+                       f"{s.washout_days} days before time zero. Both started on the same day: "
+                       f"{s.same_day.replace('_', ' ')}. Treated arm (defines the ATT): {s.treated}."),
+        "assignment": ("Not randomised. Assignment is emulated by adjusting for the baseline "
+                       f"covariates {', '.join(c.name for c in p.covariates)} with a "
+                       f"{a.propensity.model} propensity model (continuous covariates: "
+                       f"{a.propensity.continuous}); weights for {', '.join(p.estimands)}"
+                       f"{', stabilized' if a.weights.stabilize else ''}"
+                       + (f", truncated at quantiles {a.weights.truncate[0]:g} and "
+                          f"{a.weights.truncate[1]:g}" if a.weights.truncate else "") + "."),
+        "time_zero": ("The date of the first record of an arm's initiating concept inside the "
+                      "entry window: eligibility is assessed, the arm assigned and follow-up "
+                      "started on that same day (day 0); a person is tested once, at that date."),
+        "follow_up": (f"From day 0 to the first of: the outcome, a competing event, the end of "
+                      f"coverage, the administrative end ({f.administrative_end or 'none'}) or "
+                      f"{f.max_days} days."),
+        "outcome": ("Primary: " + _outcome(p, p.outcomes.primary) + "."
+                    + (" Competing: " + ", ".join(_concept(p, c) for c in p.outcomes.competing)
+                       + "." if p.outcomes.competing else "")
+                    + (" Secondary: " + "; ".join(_outcome(p, o) for o in p.outcomes.secondary)
+                       + "." if p.outcomes.secondary else "")
+                    + (" Negative controls: " + ", ".join(p.outcomes.negative_controls) + "."
+                       if p.outcomes.negative_controls else "")),
+        "contrast": (f"{', '.join(c.replace('_', '-') for c in p.contrasts)} effect of "
+                     f"{s.treated} versus {s.comparator}; estimands {', '.join(p.estimands)}."),
+        "analysis": (f"Methods: unadjusted, {', '.join(a.methods)}. Horizons: "
+                     f"{', '.join(str(h) for h in a.horizons_days)} days."
+                     f"{' Hazard ratio: yes.' if a.hazard_ratio else ''} Bootstrap: "
+                     f"{a.bootstrap.replicates} replicates, seed {a.bootstrap.seed}, "
+                     f"{a.bootstrap.interval} intervals."),
+    }
+    if design:
+        did["analysis"] += " This is the outcome-blind design report: no outcome was analysed."
+    elif bootstrap:
+        did["analysis"] += (f" This run: {bootstrap['completed']} of {bootstrap['requested']} "
+                            f"replicates completed, {bootstrap['failed']} failed.")
+    return [{"id": k, "component": label, "protocol": tt.get(k, ""), "emulation": did[k]}
+            for k, label in COMPONENTS]
+
+
+def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design: bool) -> list[dict]:
+    """Failed diagnostics, each with the section that shows it."""
+    out: list[dict] = []
+    m = p.report.min_cell
+    thr = p.analysis.smd_threshold
+    bal = raw.get("balance")
+    if bal is not None:
+        for est, g in bal.groupby(bal["estimand"].astype(str), sort=True):
+            v = pd.to_numeric(g["smd_weighted"], errors="coerce").abs()
+            over = [f"{r.covariate}" + ("" if fmt.missing(r.level) else f": {r.level}")
+                    for r, x in zip(g.itertuples(index=False), v, strict=True) if x > thr]
+            if over:
+                out.append({"section": "baseline", "text":
+                            f"Imbalance after {est} weighting: |SMD| above {thr:g} for "
+                            f"{', '.join(over)}."})
+    pos = raw.get("positivity")
+    if pos:
+        ext = pos.get("extreme") or {}
+        share = ext.get("share")
+        if share is not None and float(share) > 0:
+            out.append({"section": "positivity", "text":
+                        f"Extreme propensity scores: {dc.show_count(ext.get('n'), m)} persons "
+                        f"below {fmt.sig(ext.get('low'))} or above {fmt.sig(ext.get('high'))}."})
+        n = pos.get("n") or {}
+        for est, w in (pos.get("weights") or {}).items():
+            for arm, ess in (w.get("ess") or {}).items():
+                na = n.get(arm)
+                if ess is None or na is None:
+                    continue
+                if float(ess) < ESS_MIN or float(ess) < ESS_SHARE * float(na):
+                    out.append({"section": "positivity", "text":
+                                f"Small effective sample size under {est} weights in {arm}: "
+                                f"{fmt.num(ess, 0)} (below {ESS_MIN} or "
+                                f"{ESS_SHARE:.0%} of the arm)."})
+        if (pos.get("model") or {}).get("converged") is False:
+            out.append({"section": "positivity", "text": "The propensity model did not converge."})
+    if not design:
+        for arm, ev in events.items():
+            if not math.isnan(ev) and ev < FEW_EVENTS:
+                out.append({"section": "results", "text":
+                            f"Few events: fewer than {FEW_EVENTS} primary-outcome events in "
+                            f"{arm}."})
+        b = raw.get("bootstrap")
+        if b and (b.get("failed") or 0) > 0:
+            out.append({"section": "results", "text":
+                        f"Bootstrap: {b.get('failed')} of {b.get('requested')} replicates failed."})
+    return out
+
+
+def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
+    """The identifying assumptions, each in words with this run's evidence for or against it."""
+    thr = p.analysis.smd_threshold
+    warn = ctx["warnings"]
+    bal_w = [w["text"] for w in warn if w["section"] == "baseline"]
+    pos_w = [w["text"] for w in warn if w["section"] == "positivity"]
+    exch = [f"Adjustment set: {', '.join(c.name for c in p.covariates)}."]
+    if ctx.get("baseline"):
+        exch.append("Balance after weighting: " + (" ".join(bal_w) if bal_w else
+                    f"every weighted |SMD| is at most {thr:g}."))
+    else:
+        exch.append("Balance: not produced in this run.")
+    if design:
+        exch.append("Negative-control outcomes: not examined in the outcome-blind design report.")
+    elif ctx.get("negative_controls"):
+        for nc in ctx["negative_controls"]:
+            hold = {True: "includes the null", False: "EXCLUDES the null",
+                    None: "has no interval"}[nc["includes_null"]]
+            exch.append(f"Negative control {nc['outcome']} ({nc['estimand']}, {nc['method']}, "
+                        f"{nc['measure']}{', day ' + nc['horizon'] if nc['horizon'] else ''}): "
+                        f"{nc['estimate']} ({nc['ci']}) — the interval {hold}.")
+    elif p.outcomes.negative_controls:
+        exch.append("Negative-control outcomes are named in the protocol but no estimate exists.")
+    else:
+        exch.append("No negative-control outcome in the protocol.")
+    pos = ctx.get("positivity")
+    posev = (["Overlap figure and weight summaries in the positivity section; c-statistic "
+              f"{pos['c_statistic']}."] + (pos_w or ["No extreme scores and no small effective "
+                                                     "sample size flagged."])) if pos else \
+        ["Positivity diagnostics: not produced in this run."]
+    cens = ctx.get("censoring")
+    if design:
+        censev = ["Censoring is an outcome-stage quantity: not examined in the design report."]
+    elif cens:
+        censev = [f"End of follow-up by reason and arm (primary outcome {cens['outcome']}) in the "
+                  "table below; coverage end is the censoring that could be informative.",
+                  "Censoring weights: " + ("used." if p.analysis.censoring_weights else
+                                           "not used (censoring assumed non-informative given "
+                                           "arm).")]
+    else:
+        censev = ["End-of-follow-up reasons: not produced in this run."]
+    a = p.analysis
+    return [
+        {"id": "exchangeability", "name": "Exchangeability given the named covariates",
+         "statement": "Within levels of the adjustment set, the arm a person started is "
+                      "independent of the outcome they would have under either strategy.",
+         "evidence": exch, "threat": bool(bal_w) or any(
+             nc["includes_null"] is False for nc in ctx.get("negative_controls") or [])},
+        {"id": "positivity", "name": "Positivity",
+         "statement": "Every covariate pattern in the cohort has a non-zero chance of starting "
+                      "either arm.", "evidence": posev, "threat": bool(pos_w)},
+        {"id": "consistency", "name": "Consistency and well-defined strategies",
+         "statement": "The strategies are defined precisely enough that the observed outcome "
+                      "under the strategy a person followed is their outcome under it.",
+         "evidence": ["Strategies as run: " + "; ".join(
+             f"{arm.name} = first record of {_concept(p, arm.initiate)}" for arm in
+             p.strategies.arms) + f"; washout {p.strategies.washout_days} days.",
+             "Versions of each strategy (dose, product within a code list) are pooled."],
+         "threat": False},
+        {"id": "no-interference", "name": "No interference",
+         "statement": "One person's strategy does not change another person's outcome.",
+         "evidence": ["Not testable from the data; plausible for individually taken "
+                      "treatments, doubtful for infectious outcomes or shared care."],
+         "threat": False},
+        {"id": "censoring", "name": "Non-informative censoring",
+         "statement": "Leaving follow-up (end of coverage) is unrelated to the outcome given arm "
+                      "and, with censoring weights, the covariates.", "evidence": censev,
+         "threat": False},
+        {"id": "specification", "name": "Correct model specification",
+         "statement": "The propensity and outcome models describe the data well enough.",
+         "evidence": [f"Propensity: {a.propensity.model} regression, continuous covariates as "
+                      f"{a.propensity.continuous}.",
+                      f"Outcome methods: {', '.join(a.methods)}; doubly robust estimates stay "
+                      "consistent if either model is right."
+                      + ("" if not pos or not pos["model"]["warnings"] else
+                         " Model warnings: " + "; ".join(pos["model"]["warnings"]))],
+         "threat": bool(pos and pos["model"]["converged"] == "False")},
+        {"id": "time-zero", "name": "Time zero aligned with eligibility and assignment",
+         "statement": "Eligibility, assignment and the start of follow-up coincide, so no "
+                      "immortal time or selection after baseline enters.",
+         "evidence": ["By construction: all three are the date of the first initiating record "
+                      "(day 0); covariates use windows ending at day 0 or before; outcomes count "
+                      "from day 1."], "threat": False},
+    ]
+
+
+def outcome_names(p: Protocol) -> list[str]:
+    return [outcome_name(o) for o in p.outcomes.all()]

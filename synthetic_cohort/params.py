@@ -1,0 +1,131 @@
+"""Parameters of the invented registry's data-generating process (all values invented).
+
+Every hazard is constant in time (per year, converted to per day), so the true cumulative
+incidence of each outcome with death as a competing event has a closed form (see
+:func:`synthetic_cohort.truth.cumulative_incidence`). Linear predictors use the covariates *as the
+protocol measures them* from the extract, so that the measured covariates are a sufficient
+adjustment set (no unmeasured confounding by construction).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+EPOCH = dt.date(1970, 1, 1)
+
+
+def day(text: str) -> int:
+    """Days since 1970-01-01 of an ISO date."""
+    return (dt.date.fromisoformat(text) - EPOCH).days
+
+
+REGISTRY_START = day("2008-01-01")  # first day any record can carry
+ENTRY_START = day("2017-01-01")  # the protocol's entry window (keep in step with the template)
+ENTRY_END = day("2021-12-31")
+DATA_END = day("2023-06-30")  # last day of the extract (later than the administrative end)
+
+ARMS = ("kestrel", "plover")  # invented second-line drug classes; kestrel is the treated arm
+TREATED = "kestrel"
+REGIONS = ("north", "south", "east", "west", "coast")
+REGION_PROBS = (0.30, 0.25, 0.20, 0.15, 0.10)
+AREA_TYPES = ("urban", "rural")  # a person attribute the protocol does not use
+
+# -- codes (invented). Prefix matching: a list code matches itself and every code below it.
+ARM_CODES = {"kestrel": ("RXK1", "RXK1A", "RXK2"), "plover": ("RXP1", "RXP2", "RXP2B")}
+ARM_CODE_PROBS = {"kestrel": (0.6, 0.1, 0.3), "plover": (0.5, 0.3, 0.2)}
+FIRST_LINE_CODES = ("RXF1", "RXF2", "RXF3")
+OTHER_DRUG_CODES = tuple(f"RXO{i:02d}" for i in range(1, 41))
+CMD_CODES = ("CMD1", "CMD2.1")  # the chronic condition (required diagnosis)
+CV_CODES = ("CVE1", "CVE2")  # prior cardiovascular event
+KIDNEY_CODES = ("KDN3",)
+HF_CODES = ("HFX", "HFX.1")  # heart failure: prior record excludes; inpatient = the outcome
+LENS_CODES = ("LNS2",)  # lens opacity: the negative-control outcome
+NOISE_DX_CODES = tuple(f"ZZ{i:02d}" for i in range(1, 31))
+MARKER_CODE, MARKER_UNIT = "LBM1", "mmol/mol"  # the metabolic marker (baseline lab and outcome)
+OTHER_LAB_CODE, OTHER_LAB_UNIT = "LBQ2", "g/L"
+
+# -- person mix: design types (probabilities). The eligible cohort is decided by the rules, not
+# by these labels; the labels only make sure every kind of ineligible person is present.
+DESIGNS = {
+    "candidate": 0.68,
+    "prevalent_user": 0.04,
+    "initiated_before_window": 0.025,
+    "initiated_after_window": 0.025,
+    "too_young": 0.03,
+    "too_old": 0.025,
+    "short_coverage": 0.03,
+    "coverage_gap": 0.02,
+    "prior_heart_failure": 0.03,
+    "no_condition_record": 0.03,
+    "same_day_both": 0.01,
+    "never_initiates": 0.03,
+    "arm_record_after_death": 0.005,
+    "boundary": 0.02,
+}
+BOUNDARY_CASES = (
+    "age_min_birthday",  # time zero on the 40th birthday: age 40, eligible
+    "age_min_eve",  # the day before: age 39
+    "age_max_last_day",  # the day before the 86th birthday: age 85, eligible
+    "age_max_birthday",  # the 86th birthday: age 86
+    "coverage_touching",  # two periods, next start = previous end + 1: merged
+    "coverage_one_day_gap",  # next start = previous end + 2: not merged
+    "coverage_exact",  # coverage starts on day -365
+    "coverage_one_short",  # coverage starts on day -364
+    "washout_edge_in",  # an arm record on day -365
+    "washout_edge_out",  # an arm record on day -366 (before the entry window)
+    "require_edge_in",  # the only condition record on day -1825
+    "require_edge_out",  # the only condition record on day -1826
+    "exclude_edge_in",  # a heart-failure record on day -1825
+    "exclude_edge_out",  # a heart-failure record on day -1826
+    "exclude_day0",  # a heart-failure record on day 0
+    "entry_first_day",  # time zero on the entry window's first day
+    "entry_last_day",  # time zero on its last day
+    "entry_day_before",  # the only arm records start the day before the window
+)
+
+AGE_MEAN, AGE_SD = 63.0, 10.0
+MALE_PROB = 0.52
+
+# -- baseline covariates (design values; the protocol re-measures them from the records)
+PRIOR_CV = {"intercept": -1.8, "age10": 0.5, "male": 0.4}
+KIDNEY = {"intercept": -2.4, "age10": 0.4}
+LAB_MEAN, LAB_SD = 55.0, 9.0
+LAB_REGION = (0.0, 2.0, -1.5, 3.0, -2.0)
+LAB_MEASURED = {"intercept": 1.3, "age10": -0.25, "region": (0.0, -0.4, 0.3, -0.8, 0.5)}
+OTHER_DRUGS = {"intercept": 1.1, "cv": 0.8, "kidney": 0.5, "age10": 0.2}  # Poisson mean
+FIRST_LINE_PROB = 0.9
+
+# -- treatment choice: logit P(kestrel) (confounding by indication: sicker persons get kestrel)
+TREATMENT = {"intercept": -0.45, "age10": 0.35, "male": 0.1, "cv": 0.9, "kidney": 0.6,
+             "lab10": 0.5, "lab_missing": 0.3, "drugs": 0.18,
+             "region": (0.0, 0.3, -0.3, 0.5, -0.5)}
+
+# -- follow-up hazards per year; covariates as measured: age (completed years), male,
+# prior_cv, kidney, lab (last baseline value; 55 when missing) with its missing indicator,
+# n_drugs (distinct codes), region.
+PRIMARY = {"rate": 0.035, "age10": 0.45, "male": 0.25, "cv": 0.7, "kidney": 0.4, "lab10": 0.25,
+           "lab_missing": 0.2, "drugs": 0.12, "region": (0.0, 0.15, -0.1, 0.25, -0.2),
+           "hazard_ratio": {"kestrel": 0.7, "plover": 1.0}}
+NEGATIVE_CONTROL = {"rate": 0.02, "age10": 0.6, "male": -0.2, "cv": 0.0, "kidney": 0.3,
+                    "lab10": 0.3, "lab_missing": 0.3, "drugs": 0.1,
+                    "region": (0.0, 0.1, 0.0, 0.2, -0.1),
+                    "hazard_ratio": {"kestrel": 1.0, "plover": 1.0}}
+DEATH = {"rate": 0.02, "age10": 0.9, "male": 0.2, "cv": 0.5, "kidney": 0.6, "lab10": 0.1,
+         "lab_missing": 0.1, "drugs": 0.05, "region": (0.0, 0.0, 0.1, 0.1, 0.0),
+         "hazard_ratio": {"kestrel": 1.0, "plover": 1.0}}
+COVERAGE_END = {"rate": 0.12, "age10": -0.2, "male": 0.0, "cv": 0.0, "kidney": 0.0, "lab10": 0.0,
+                "lab_missing": 0.2, "drugs": 0.0, "region": (0.0, 0.3, -0.2, 0.4, 0.1),
+                "hazard_ratio": {"kestrel": 1.1, "plover": 1.0}}
+COVERAGE_RESUME_PROB = 0.5  # after a coverage end, a new period starts after a gap
+OUTPATIENT_HF_RATE = 0.03  # outpatient heart-failure records in follow-up (not the outcome)
+
+# -- the measured outcome: the marker near day 365 (no change from baseline)
+MARKER_OUTCOME = {"intercept": 52.0, "lab": 0.5, "lab_missing": 3.0, "age10": 0.8, "cv": 1.5,
+                  "kidney": 1.0, "drugs": 0.3, "male": 0.5,
+                  "region": (0.0, 1.0, -0.5, 1.5, -1.0), "sd": 5.0,
+                  "effect": {"kestrel": -4.0, "plover": 0.0}}
+MARKER_AT_DAY, MARKER_TOLERANCE = 365, 60
+MARKER_JITTER = 45  # the outcome measurement falls on day 365 +- U{0..45}
+# logit P(measured near day 365 | alive, covered) -- depends on measured covariates and arm only
+MARKER_MEASURED = {"intercept": 1.0, "lab_measured": 0.9, "age10": -0.15, "kestrel": 0.3,
+                   "region": (0.0, -0.3, 0.2, -0.5, 0.3)}

@@ -1,0 +1,124 @@
+"""The ``emulant`` command: check, synth, where, help, and errors without tracebacks.
+
+The attrition expected from the tiny extract is a hand computation (tests/tiny_extract.py).
+"""
+
+from __future__ import annotations
+
+import importlib
+import json
+
+import pytest
+from tiny_extract import EXPECTED_ATTRITION, protocol_dict, write_extract, write_protocol
+
+from emulant import cli
+
+
+def _need(module: str, why: str):
+    try:
+        return importlib.import_module(module)
+    except ImportError as exc:
+        pytest.skip(f"{module} is not importable yet ({exc}); {why}")
+
+
+def _run(capsys, *argv: str) -> tuple[int, str, str]:
+    rc = cli.main(list(argv))
+    out = capsys.readouterr()
+    return rc, out.out, out.err
+
+
+def test_help(capsys):
+    rc, out, _ = _run(capsys, "--help")
+    assert rc == 0
+    for word in ("check", "synth", "where"):
+        assert word in out
+    rc, out, _ = _run(capsys, "check", "--help")
+    assert rc == 0 and "--extract" in out and "--protocol" in out and "exit" in out.lower()
+    rc, out, _ = _run(capsys, "synth", "--help")
+    assert rc == 0 and "--persons" in out and "20000" in out
+
+
+def test_usage_error_exits_2(capsys):
+    rc, _, err = _run(capsys, "check", "--extract", "x")
+    assert rc == 2 and "--protocol" in err and "Traceback" not in err
+    rc, _, err = _run(capsys, "synth", "--out", "x", "--format", "xlsx")
+    assert rc == 2 and "invalid choice" in err
+
+
+def test_check_valid_extract_prints_attrition(tmp_path, capsys):
+    _need("emulant.cohort", "the eligibility steps of `emulant check` live there")
+    ex = write_extract(tmp_path / "extract")
+    pp = write_protocol(tmp_path / "proto")
+    saved = tmp_path / "out" / "extract_check.json"
+    rc, out, err = _run(capsys, "check", "--extract", str(ex), "--protocol", str(pp), "--save-check", str(saved))
+    assert rc == 0, err
+    assert "Attrition" in out and "Traceback" not in out + err
+    lines = out[out.index("Attrition"):].splitlines()[2:]
+    got = [(ln.split()[0], int(ln.split()[-2])) for ln in lines if ln.strip()]
+    assert got == EXPECTED_ATTRITION  # hand computation
+    assert "Warnings" in out and "coverage_before_days" in out
+    check = json.loads(saved.read_text())
+    assert check["tables"]["persons"]["rows"] == 8
+
+
+def test_check_empty_cohort_names_the_step(tmp_path, capsys):
+    _need("emulant.cohort", "the eligibility steps of `emulant check` live there")
+    d = protocol_dict()
+    d["eligibility"]["entry"] = {"start": "2022-01-01", "end": "2022-06-30"}  # nobody initiates then
+    rc, out, err = _run(capsys, "check", "--extract", str(write_extract(tmp_path / "extract")),
+                        "--protocol", str(write_protocol(tmp_path / "proto", d)))
+    assert rc == 2 and "Traceback" not in err
+    assert "initiated" in err
+
+
+def test_unexpected_error_is_one_line(tmp_path, capsys, monkeypatch):
+    import emulant.extract
+
+    def boom(*_a, **_k):
+        raise RuntimeError("disk on fire\nsecond line")
+
+    monkeypatch.setattr(emulant.extract, "check_extract", boom)
+    rc, _, err = _run(capsys, "check", "--extract", str(write_extract(tmp_path / "extract")),
+                      "--protocol", str(write_protocol(tmp_path / "proto")))
+    assert rc == 2
+    assert err.strip().endswith("error while checking the extract "
+                                f"{tmp_path / 'extract'}: RuntimeError: disk on fire")
+    assert "second line" not in err and "Traceback" not in err
+
+
+def test_synth_writes_files(tmp_path, capsys):
+    _need("synthetic_cohort.generate", "the generator is written by another engineer")
+    out_dir = tmp_path / "synth"
+    rc, out, err = _run(capsys, "synth", "--persons", "300", "--seed", "11", "--out", str(out_dir),
+                        "--format", "csv")
+    assert rc == 0, err
+    names = {f.name for f in out_dir.rglob("*") if f.is_file()}
+    assert any(n.startswith("persons.") for n in names), names
+    assert "truth.json" in names
+    assert "300 persons" in out
+
+
+def test_synth_rejects_nonsense(capsys, tmp_path):
+    rc, _, err = _run(capsys, "synth", "--persons", "0", "--out", str(tmp_path))
+    assert rc == 2 and "--persons" in err
+
+
+def test_where(tmp_path, capsys, monkeypatch):
+    write_protocol(tmp_path / "config" / "protocols", name="demo.yaml")
+    (tmp_path / "config" / "config.yaml").write_text(
+        "extract: data/extract\nprotocol: config/protocols/demo.yaml\nresults: out/results\nreports: out/reports\n")
+    monkeypatch.chdir(tmp_path)
+    rc, out, _ = _run(capsys, "where", "--config", "config/config.yaml")
+    assert rc == 0
+    assert "out/results/tiny-test" in out and "none yet" in out
+    ledger = tmp_path / "out" / "reports" / "tiny-test" / "ledger.jsonl"
+    ledger.parent.mkdir(parents=True)
+    ledger.write_text(json.dumps({"stamp": "a", "report": "out/reports/tiny-test/a/report.html"}) + "\n"
+                      + json.dumps({"stamp": "b", "report": "out/reports/tiny-test/b/report.html"}) + "\n")
+    rc, out, _ = _run(capsys, "where", "--config", "config/config.yaml")
+    assert rc == 0 and "latest report: out/reports/tiny-test/b/report.html" in out
+
+
+def test_where_missing_config(tmp_path, capsys):
+    rc, _, err = _run(capsys, "where", "--config", str(tmp_path / "none.yaml"))
+    assert rc == 2 and "does not exist" in err and "Traceback" not in err
