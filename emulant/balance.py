@@ -132,20 +132,40 @@ def balance_table(cohort: pd.DataFrame, weights_df: pd.DataFrame, protocol: Any)
     """
     a = treated_indicator(cohort)
     items = _items(cohort, protocol)
-    rows = []
-    for est in protocol.estimands:
-        w = _aligned_weights(cohort, weights_df, columns.weight(est))
-        t, c = a == 1, a == 0
-        for name, level, kind, x in items:
-            vr = _ratio(weighted_var(x[t], w[t]), weighted_var(x[c], w[c])) if (
-                kind == "continuous") else np.nan
-            rows.append((name, level, est, weighted_mean(x[t], w[t]), weighted_mean(x[c], w[c]),
-                         smd(x, a, None, kind), smd(x, a, w, kind), vr))
-    return pd.DataFrame(rows, columns=list(BALANCE_COLUMNS))
+    if not items:
+        return pd.DataFrame(columns=list(BALANCE_COLUMNS))
+    V = np.column_stack([x for *_, x in items])
+    cont = np.array([kind == "continuous" for _, _, kind, _ in items])
+    arms = (a == 1, a == 0)
+    m1, m0 = (V[m].mean(axis=0) for m in arms)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = [np.where(cont, V[m].var(axis=0, ddof=1), mean * (1 - mean))
+               for m, mean in zip(arms, (m1, m0), strict=True)]
+        den = np.sqrt((var[0] + var[1]) / 2)
+        unweighted = _standardize(m1 - m0, den)
+        frames = []
+        for est in protocol.estimands:
+            w = _aligned_weights(cohort, weights_df, columns.weight(est))
+            means, wvars = [], []
+            for m in arms:
+                wm = np.where(m, w, 0.0)
+                s1, s2 = wm.sum(), wm @ wm
+                mean = wm @ V / s1
+                means.append(mean)
+                wvars.append(s1 / (s1 * s1 - s2) * (wm @ (V - mean) ** 2))
+            ratio = np.where(cont & (wvars[1] > 0), wvars[0] / wvars[1], np.nan)
+            frames.append(pd.DataFrame({
+                "covariate": [n for n, *_ in items], "level": [lev for _, lev, *_ in items],
+                "estimand": est, "mean_treated": means[0], "mean_comparator": means[1],
+                "smd_unweighted": unweighted, "smd_weighted": _standardize(means[0] - means[1], den),
+                "variance_ratio": ratio}))
+    return pd.concat(frames, ignore_index=True)[list(BALANCE_COLUMNS)]
 
 
-def _ratio(num: float, den: float) -> float:
-    return float(num / den) if den > 0 else float("nan")
+def _standardize(diff: np.ndarray, den: np.ndarray) -> np.ndarray:
+    """diff / den; 0 where both vanish, +-inf where only the denominator does."""
+    out = np.where(den > 0, diff / np.where(den > 0, den, 1.0), np.sign(diff) * np.inf)
+    return np.where((den > 0) | (np.abs(diff) >= 1e-12), out, 0.0)
 
 
 def flagged(balance_df: pd.DataFrame, threshold: float) -> list[str]:

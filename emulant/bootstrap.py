@@ -21,12 +21,13 @@ import math
 import os
 import sys
 import time
+import warnings
 from collections import Counter
 from collections.abc import Callable, Iterator
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from multiprocessing import get_context
+from multiprocessing import get_all_start_methods, get_context
 from typing import Any
 
 import numpy as np
@@ -124,7 +125,8 @@ def _replicate(r: int) -> tuple[int, np.ndarray | None, np.ndarray | None, str |
     s = _STATE
     freq = replicate_freq(len(s["cohort"]), s["seed"], r)
     try:
-        with np.errstate(all="ignore"):
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # a replicate's fit warnings: the point estimate's count
             sample = build_sample(s["cohort"], s["protocol"], s["design"], s["X"], freq)
             if sample.warnings:
                 return r, None, None, sample.warnings[0]
@@ -228,7 +230,18 @@ def _run_serial(state, reps, on_result) -> None:
         _STATE.update(saved)
 
 
-def _run_pool(state, reps, on_result, workers: int, start_method: str) -> None:
+def default_start_method() -> str:
+    """'fork' where the platform has it, else 'spawn'.
+
+    Fork does not re-run the caller's main module in the workers (spawn does, which fails in a
+    script without an ``if __name__ == "__main__"`` guard, such as a workflow script); the workers
+    only run numpy code with one BLAS thread (OpenBLAS shuts its threads down around a fork).
+    """
+    return "fork" if "fork" in get_all_start_methods() else "spawn"
+
+
+def _run_pool(state, reps, on_result, workers: int, start_method: str | None) -> None:
+    start_method = start_method or default_start_method()
     with _one_thread_env():
         pool = ProcessPoolExecutor(max_workers=workers, mp_context=get_context(start_method),
                                    initializer=_init_worker, initargs=(state,))
@@ -247,7 +260,7 @@ def _run_pool(state, reps, on_result, workers: int, start_method: str) -> None:
 
 def run_bootstrap(cohort, protocol, design, X, rows: list[dict], curves: list[dict],
                   workers: int = 2, progress: bool | Callable | None = None,
-                  start_method: str = "spawn", replicates: int | None = None,
+                  start_method: str | None = None, replicates: int | None = None,
                   seed: int | None = None) -> BootstrapRun:
     """Run the protocol's bootstrap replicates; ``rows``/``curves`` are the point estimate's.
 
@@ -287,7 +300,8 @@ def run_bootstrap(cohort, protocol, design, X, rows: list[dict], curves: list[di
     order = sorted(results)
     row_reps = np.array([results[r][0] for r in order]).reshape(len(order), len(rows))
     curve_reps = np.array([results[r][1] for r in order]).reshape(len(order), len(curves))
-    return BootstrapRun(requested, seed, settings.interval, max(1, workers), start_method,
+    method = "in-process" if workers <= 1 else (start_method or default_start_method())
+    return BootstrapRun(requested, seed, settings.interval, max(1, workers), method,
                         row_reps, curve_reps, dict(reasons), time.monotonic() - t0)
 
 

@@ -133,15 +133,18 @@ def cmd_synth(args: argparse.Namespace) -> int:
         return write_synthetic(Path(args.out), persons=args.persons, seed=args.seed, fmt=args.format)
 
     written = _stage(f"writing the synthetic extract to {args.out}", run)
-    print(f"Wrote the synthetic extract ({args.persons} persons, seed {args.seed}, {args.format}):")
-    if isinstance(written, Mapping):
-        items = [f"{k}: {v}" for k, v in written.items()]
-    elif isinstance(written, list | tuple | set):
-        items = [str(x) for x in written]
-    else:
-        items = [str(f) for f in sorted(Path(args.out).rglob("*")) if f.is_file()]
-    for item in items:
-        print(f"  {item}")
+    out = Path(args.out)
+    files = sorted(f for f in out.rglob("*") if f.is_file())
+    print(f"Wrote the synthetic extract ({args.persons} persons, seed {args.seed}, {args.format}) "
+          f"to {out}: {len(files)} file(s)")
+    for f in files:
+        print(f"  {f.relative_to(out)}  ({f.stat().st_size:,} bytes)")
+    if isinstance(written, Mapping):  # the generator's summary: show its short entries only
+        eligible = written.get("eligible")
+        if isinstance(eligible, Mapping) and "n" in eligible:
+            arms = eligible.get("by_arm") or {}
+            print(f"Eligible persons (true count): {eligible['n']}"
+                  + (" (" + ", ".join(f"{k} {v}" for k, v in arms.items()) + ")" if arms else ""))
     return EXIT_OK
 
 

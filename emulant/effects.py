@@ -14,7 +14,8 @@ under each arm and the mean difference (treated minus comparator) by
 Missing values of a measured outcome enter through the observation weight
 :math:`r_i` of the sample (``AnalysisSample.censoring``): 0 for the unmeasured, the inverse
 probability of being measured for the measured (``missing: censor``), or 1 (``complete_case``).
-Time-to-event outcomes are delegated to :func:`emulant.survival.time_to_event_estimates`.
+Time-to-event outcomes are delegated to :func:`emulant.survival.time_to_event_estimates`;
+their curve rows get an ``outcome`` column (the first column of ``curves``).
 """
 
 from __future__ import annotations
@@ -28,8 +29,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from emulant import columns
 from emulant.protocol import MeasuredOutcome, Protocol
-from emulant.sample import AnalysisSample, SampleError, build_sample
+from emulant.sample import AnalysisSample, SampleError, build_sample, measured_indicator
 
 log = logging.getLogger(__name__)
 
@@ -40,8 +42,11 @@ CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low
 CONTRAST = "intention_to_treat"
 
 
-class EffectsError(Exception):
+class EstimationError(Exception):
     """An analysis that cannot be run; the message names the column, outcome or setting."""
+
+
+EffectsError = EstimationError  # the same class under the module's name
 
 
 # ----------------------------------------------------------------------------- estimators
@@ -77,19 +82,31 @@ def arm_regressions(y: np.ndarray, a: np.ndarray, X: np.ndarray,
     .. math:: \hat\beta_k = \arg\min_\beta \sum_{i: A_i=k} w_i (Y_i - Z_i^\top\beta)^2,
               \quad \hat m_k(x) = z^\top \hat\beta_k .
 
-    Solved by least squares on :math:`\sqrt{w}`-scaled rows (minimum-norm where the design is
-    rank deficient, which leaves the fitted values unique). Returns ``(m1, m0)``.
+    Solved through the normal equations on centred and scaled columns (weighted means and
+    standard deviations of the arm), by least squares on the small cross-product matrix
+    (minimum-norm where it is singular, which leaves the arm's fitted values unique).
+    Returns ``(m1, m0)``.
     """
-    Z = np.column_stack([np.ones(len(y)), X])
     out = []
     for k in (1.0, 0.0):
         idx = (a == k) & (w > 0)
         if not idx.any():
             raise SampleError("empty arm", "no measured outcome in an arm")
-        sw = np.sqrt(w[idx])
-        beta = np.linalg.lstsq(Z[idx] * sw[:, None], y[idx] * sw, rcond=None)[0]
-        out.append(Z @ beta)
+        out.append(_wls_predict(X[idx], y[idx], w[idx], X))
     return out[0], out[1]
+
+
+def _wls_predict(Xk: np.ndarray, yk: np.ndarray, wk: np.ndarray, X: np.ndarray) -> np.ndarray:
+    sw = wk.sum()
+    mu = (wk @ Xk) / sw
+    sd = np.sqrt(np.maximum((wk @ (Xk - mu) ** 2) / sw, 0.0))
+    scale = np.where(sd > 1e-12 * np.maximum(1.0, np.abs(mu)), sd, 0.0)  # 0: constant in the arm
+    inv = np.divide(1.0, scale, out=np.zeros_like(scale), where=scale > 0)
+    Zk = np.column_stack([np.ones(len(yk)), (Xk - mu) * inv])
+    A = Zk.T @ (Zk * wk[:, None])
+    b = Zk.T @ (wk * yk)
+    beta = np.linalg.lstsq(A, b, rcond=None)[0]
+    return beta[0] + ((X - mu) * inv) @ beta[1:]
 
 
 def standardized_means(m1: np.ndarray, m0: np.ndarray, target: np.ndarray) -> tuple[float, float]:
@@ -167,7 +184,7 @@ def target_weights(estimand: str, a: np.ndarray, e: np.ndarray, freq: np.ndarray
         return freq * a
     if estimand == "ATO":
         return freq * e * (1 - e)
-    raise EffectsError(f"estimands: unknown estimand {estimand!r}")
+    raise EstimationError(f"estimands: unknown estimand {estimand!r}")
 
 
 # ----------------------------------------------------------------------------- rows
@@ -194,10 +211,11 @@ def mean_rows(sample: AnalysisSample, outcome: str, estimand: str, method: str,
 
 def measured_outcome_rows(sample: AnalysisSample, outcome: MeasuredOutcome) -> list[dict[str, Any]]:
     """All rows of one measured outcome: unadjusted, then each estimand by each protocol method."""
-    from emulant import columns
-
     name = outcome.measure
-    r = np.asarray(sample.censoring[name], dtype=float)
+    if name in sample.censoring:
+        r = np.asarray(sample.censoring[name], dtype=float)
+    else:  # a sample built without censoring weights: the measured only
+        r = measured_indicator(sample.cohort, name)
     seen = r > 0
     y = np.where(seen, sample.cohort[columns.value(name)].to_numpy(dtype=float), 0.0)
     a, e, f = sample.a, sample.e, sample.freq
@@ -217,15 +235,6 @@ def measured_outcome_rows(sample: AnalysisSample, outcome: MeasuredOutcome) -> l
     return rows
 
 
-def _time_to_event():
-    try:
-        from emulant.survival import time_to_event_estimates
-    except ImportError as exc:  # the survival module is optional until it lands
-        log.warning("time-to-event outcomes skipped: emulant.survival is not importable (%s)", exc)
-        return None
-    return time_to_event_estimates
-
-
 def estimate_sample(sample: AnalysisSample) -> tuple[list[dict], list[dict]]:
     """Every outcome of the protocol for one sample (the point estimate or one replicate).
 
@@ -234,14 +243,18 @@ def estimate_sample(sample: AnalysisSample) -> tuple[list[dict], list[dict]]:
     """
     rows: list[dict] = []
     curves: list[dict] = []
-    for outcome in sample.protocol.outcomes.measured():
-        rows += measured_outcome_rows(sample, outcome)
-    tte = sample.protocol.outcomes.time_to_event()
-    fn = _time_to_event() if tte else None
-    for outcome in tte if fn is not None else ():
-        r, c = fn(sample, outcome)
-        rows += list(r)
-        curves += list(c)
+    outcomes = sample.protocol.outcomes
+    for outcome in outcomes.all():  # primary, secondary, negative controls
+        if isinstance(outcome, MeasuredOutcome):
+            rows += measured_outcome_rows(sample, outcome)
+        else:
+            from emulant.survival import time_to_event_estimates
+
+            r, c = time_to_event_estimates(sample, outcome)
+            rows += list(r)
+            # curves.csv has no outcome column (CONTRACTS §4); with several time-to-event
+            # outcomes their curves need one to be told apart: the outcome's name
+            curves += [{"outcome": outcome, **row} for row in c]
     return rows, curves
 
 
@@ -274,26 +287,37 @@ def _frame(rows: list[dict], contract: tuple[str, ...]) -> pd.DataFrame:
     for c in contract:
         if c not in df.columns:
             df[c] = np.nan
+    for c in ("horizon_day", "day", "n", "events", "at_risk"):
+        if c in df.columns:
+            df[c] = _whole_numbers(df[c])
     extra = [c for c in df.columns if c not in contract]
     return df[extra + list(contract)] if extra else df[list(contract)]
 
 
+def _whole_numbers(s: pd.Series) -> pd.Series:
+    """A count or day column as nullable integers when every value is whole (CSV shows 365)."""
+    v = pd.to_numeric(s, errors="coerce")
+    known = v.dropna()
+    if len(known) and np.all(np.isclose(known, np.round(known), rtol=0, atol=1e-9)):
+        return v.round().astype("Int64")
+    return v if len(known) else s
+
+
 def check_cohort(cohort: pd.DataFrame, protocol: Protocol) -> None:
     """Raise :class:`EffectsError` naming a column the estimators need that the cohort lacks."""
-    from emulant import columns
     from emulant.sample import TREATED
 
     need = [TREATED] + [columns.value(m.measure) for m in protocol.outcomes.measured()]
     missing = [c for c in need if c not in cohort.columns]
     if missing:
-        raise EffectsError(f"cohort: missing column(s) {', '.join(missing)}")
+        raise EstimationError(f"cohort: missing column(s) {', '.join(missing)}")
     if len(cohort) == 0:
-        raise EffectsError("cohort: no rows")
+        raise EstimationError("cohort: no rows")
 
 
 def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
                      progress: bool | Callable | None = None,
-                     start_method: str = "spawn") -> EffectsResult:
+                     start_method: str | None = None) -> EffectsResult:
     """The point estimates of every outcome, estimand and method, with bootstrap intervals.
 
     The design (levels, knots) is learned once on the whole cohort; the point estimate uses unit
@@ -306,21 +330,24 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
     protocol : the parsed protocol.
     workers : processes for the bootstrap (1 runs in this process).
     progress : None (a bar on stderr when it is a terminal), True/False, or ``f(done, total)``.
-    start_method : multiprocessing start method of the worker pool ('spawn' or 'fork').
+    start_method : the worker pool's start method, 'fork' (default where available) or 'spawn'
+        (which re-imports the caller's main module: guard it with ``if __name__ == "__main__"``).
     """
     from emulant.bootstrap import attach_intervals, run_bootstrap
     from emulant.covariates import covariate_kinds
-    from emulant.propensity import build_design
+    from emulant.propensity import DesignError, build_design
+    from emulant.weights import WeightsError
 
     check_cohort(cohort, protocol)
-    kinds = covariate_kinds(protocol, cohort)
-    design = build_design(cohort, protocol.covariates, kinds, protocol.analysis.propensity.continuous)
-    X = np.asarray(design.transform(cohort), dtype=float)
     try:
+        kinds = covariate_kinds(protocol, cohort)
+        design = build_design(cohort, protocol.covariates, kinds,
+                              protocol.analysis.propensity.continuous)
+        X = np.asarray(design.transform(cohort), dtype=float)
         point = build_sample(cohort, protocol, design, X)
         rows, curves = estimate_sample(point)
-    except SampleError as exc:
-        raise EffectsError(f"the point estimate cannot be computed: {exc}") from None
+    except (SampleError, DesignError, WeightsError) as exc:
+        raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
     for w in point.warnings:
         log.warning("point estimate: %s", w)
     boot = run_bootstrap(cohort, protocol, design, X, rows, curves, workers=workers,

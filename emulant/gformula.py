@@ -17,9 +17,17 @@ so no long table is materialised; :func:`person_period` builds the long table ex
 
 from __future__ import annotations
 
+from contextlib import nullcontext
+
 import numpy as np
 
 from emulant.survival import COMPETING, OUTCOME, SurvivalError
+
+try:  # installed with scikit-learn
+    from threadpoolctl import threadpool_limits
+except ImportError:  # pragma: no cover
+    def threadpool_limits(**_):
+        return nullcontext()
 
 
 def last_period(time, status, period_days: int) -> np.ndarray:
@@ -55,7 +63,8 @@ def time_basis(n_periods: int, kind: str = "spline", n_knots: int = 5) -> np.nda
     """Basis of the period index :math:`k = 0, \\dots, K-1` for the baseline hazard.
 
     ``spline``: a constant, :math:`k`, and the :math:`n_{knots} - 2` terms of a restricted
-    (natural) cubic spline with knots at the 5%, 27.5%, 50%, 72.5%, 95% quantiles of the periods
+    (natural) cubic spline with knots at the 5%, 27.5%, 50%, 72.5%, 95% quantiles of the period
+    indices (fixed by K alone, so every bootstrap replicate uses the same basis)
     (Harrell 2015, Regression Modeling Strategies, 2nd ed., §2.4.5),
 
     .. math::
@@ -80,6 +89,65 @@ def time_basis(n_periods: int, kind: str = "spline", n_knots: int = 5) -> np.nda
              + cube(k - t[-1]) * (t[-2] - t[j]) / (t[-1] - t[-2]))
         cols.append(c / (t[-1] - t[0]) ** 2)
     return np.column_stack(cols)
+
+
+CHUNK = 8192  # persons per block of the implicit person-period table (fits in cache)
+_CAP = np.exp(35.0)  # a hazard logit above 35 is a probability of 1
+
+
+class _Data:
+    """The implicit person-period table of one model, in blocks of persons."""
+
+    def __init__(self, B, Z, a, f, last, y_rows, y_k, y_f):
+        self.B, self.Z, self.a, self.f, self.last = B, Z, a, f, last
+        self.arm = (a == 1).astype(np.intp)
+        self.y_rows, self.y_k, self.y_f = y_rows, y_k, y_f
+        K = B.shape[0]
+        self.periods = np.arange(K)
+        self.ysum_k = np.bincount(y_k, weights=y_f, minlength=K)
+        self.ysum_k1 = np.bincount(y_k, weights=y_f * a[y_rows], minlength=K)
+        self.ysum_x = Z[y_rows].T @ y_f
+        self.ZZa = np.hstack([Z, Z * a[:, None]])
+
+    def pass_(self, params):
+        """Log-likelihood, gradient and information matrix at ``params``, block by block."""
+        B, Z, a = self.B, self.Z, self.a
+        K, q = B.shape
+        p = Z.shape[1]
+        beta = params[2 * q:]
+        c = np.stack([B @ params[:q], B @ (params[:q] + params[q:2 * q])])
+        expc = np.exp(np.minimum(c, 35.0))
+        lin_ev = Z[self.y_rows] @ beta if p else np.zeros(self.y_rows.size)
+        ll = float(self.y_f @ (lin_ev + c[self.arm[self.y_rows], self.y_k]))
+        s_k, s_k1, w_k, w_k1 = (np.zeros(K) for _ in range(4))
+        r_x, WtZZ, H_xx = np.zeros(p), np.zeros((K, 2 * p)), np.zeros((p, p))
+        for lo in range(0, a.size, CHUNK):
+            sl = slice(lo, lo + CHUNK)
+            Zc, ac = Z[sl], a[sl]
+            fm = self.f[sl, None] * (self.periods[None, :] <= self.last[sl, None])
+            lin = np.clip(Zc @ beta, -700, 300) if p else np.zeros(ac.size)
+            E = expc[self.arm[sl]]  # exp(eta) = exp(x'beta) * exp(b(k)'(gamma + a alpha))
+            E *= np.exp(lin)[:, None]
+            np.minimum(E, _CAP, out=E)
+            ll -= float(np.vdot(fm, np.log1p(E)))
+            inv = 1.0 / (1.0 + E)
+            pm = E * inv
+            pm *= fm  # f * mask * p
+            W = np.multiply(pm, inv, out=inv)  # f * mask * p (1 - p)
+            s_k += pm.sum(axis=0)
+            s_k1 += ac @ pm
+            w_k += W.sum(axis=0)
+            w_k1 += ac @ W
+            if p:
+                r_x += Zc.T @ pm.sum(axis=1)
+                WtZZ += W.T @ self.ZZa[sl]
+                H_xx += (Zc.T * W.sum(axis=1)) @ Zc
+        grad = np.concatenate([B.T @ (self.ysum_k - s_k), B.T @ (self.ysum_k1 - s_k1),
+                               self.ysum_x - r_x])
+        H_tt, H_ta = (B.T * w_k) @ B, (B.T * w_k1) @ B
+        H_tx, H_ax = B.T @ WtZZ[:, :p], B.T @ WtZZ[:, p:]
+        H = np.block([[H_tt, H_ta, H_tx], [H_ta, H_ta, H_ax], [H_tx.T, H_ax.T, H_xx]])
+        return ll, grad, H
 
 
 class PooledLogistic:
@@ -121,68 +189,42 @@ class PooledLogistic:
         self.x_mean_ = np.average(X, axis=0, weights=f) if X.shape[1] else np.zeros(0)
         sd = X.std(axis=0) if X.shape[1] else np.zeros(0)
         self.x_scale_ = np.where(sd > 0, sd, 1.0)
-        Z = (X - self.x_mean_) / self.x_scale_
-        Za = Z * a[:, None]
-        mask = np.arange(K)[None, :] <= last[:, None]
-        fm = f[:, None] * mask
-        ev = np.asarray(event, dtype=bool) & (last >= 0)
+        keep = (f > 0) & (last >= 0)  # persons with at least one period at risk
+        Z = ((X - self.x_mean_) / self.x_scale_)[keep]
+        a, f, last = a[keep], f[keep], last[keep]
+        ev = np.asarray(event, dtype=bool)[keep]
         y_rows, y_k, y_f = np.flatnonzero(ev), last[ev], f[ev]
-        ysum_k = np.bincount(y_k, weights=y_f, minlength=K)
-        ysum_k1 = np.bincount(y_k, weights=y_f * a[ev], minlength=K)
-        ysum_x = Z[y_rows].T @ y_f
-        rate = y_f.sum() / max(fm.sum(), 1e-300)
+        data = _Data(B, Z, a, f, last, y_rows, y_k, y_f)
+        rate = y_f.sum() / max(float(f @ (last + 1)), 1e-300)
         params = np.zeros(2 * q + Z.shape[1])
         if 0 < rate < 1:
             params[:q] = np.linalg.lstsq(B, np.full(K, np.log(rate / (1 - rate))), rcond=None)[0]
         self.n_iter_, self.converged_ = 0, False
-        arm_idx = (a == 1).astype(np.intp)
-        cap = np.exp(35.0)  # a hazard logit above 35 is a probability of 1
+        # the blocks' products are small: BLAS threads cost more than they bring (measured)
+        with threadpool_limits(limits=1, user_api="blas"):
+            self._newton(data, params)
+        return self
 
-        def loglik(params):
-            lin = np.clip(Z @ params[2 * q:], -700, 300) if Z.shape[1] else np.zeros(a.size)
-            c = np.stack([B @ params[:q], B @ (params[:q] + params[q:2 * q])])
-            E = np.exp(np.minimum(c, 35.0))[arm_idx]  # exp(eta) = exp(x'beta) * exp(b(k)'...)
-            E *= np.exp(lin)[:, None]
-            np.minimum(E, cap, out=E)
-            eta_ev = lin[y_rows] + c[arm_idx[y_rows], y_k]
-            ll = float(y_f @ eta_ev - np.vdot(fm, np.log1p(E)))
-            return ll, E
-
-        ll, E = loglik(params)
+    def _newton(self, data: _Data, params: np.ndarray) -> None:
+        ll, grad, H = data.pass_(params)
         for it in range(1, self.max_iter + 1):
-            inv = 1.0 + E
-            np.divide(1.0, inv, out=inv)
-            pm = E * inv
-            pm *= fm
-            W = np.multiply(pm, inv, out=inv)  # f * mask * p (1 - p)
-            # gradient: sums of f*mask*(y - p) over the design's columns
-            r_k, r_k1 = ysum_k - pm.sum(axis=0), ysum_k1 - a @ pm
-            r_x = ysum_x - Z.T @ pm.sum(axis=1)
-            grad = np.concatenate([B.T @ r_k, B.T @ r_k1, r_x])
-            w_k, w_k1 = W.sum(axis=0), a @ W
-            WtZ, WtZa = W.T @ Z, W.T @ Za
-            H_tt, H_ta = (B.T * w_k) @ B, (B.T * w_k1) @ B
-            H_tx, H_ax = B.T @ WtZ, B.T @ WtZa
-            H_xx = (Z.T * W.sum(axis=1)) @ Z
-            H = np.block([[H_tt, H_ta, H_tx], [H_ta, H_ta, H_ax], [H_tx.T, H_ax.T, H_xx]])
             d = np.sqrt(np.clip(np.diag(H), 1e-300, None))
             step = np.linalg.lstsq(H / np.outer(d, d), grad / d, rcond=None)[0] / d
             size = 1.0
             while True:  # step halving: Newton steps on the log-likelihood must not descend
-                new_ll, new_E = loglik(params + size * step)
-                if new_ll >= ll - 1e-10 * abs(ll) or size < 1e-3:
+                new = data.pass_(params + size * step)
+                if new[0] >= ll - 1e-10 * abs(ll) or size < 1e-3:
                     break
                 size /= 2
             params = params + size * step
             self.n_iter_ = it
-            done = np.max(np.abs(size * step)) < self.tol or abs(new_ll - ll) < 1e-13 * abs(ll)
-            ll, E = new_ll, new_E
+            done = np.max(np.abs(size * step)) < self.tol or abs(new[0] - ll) < 1e-13 * abs(ll)
+            ll, grad, H = new
             if done:
                 self.converged_ = True
                 break
         self.loglik_ = ll
         self.coef_ = params
-        return self
 
     def predict_hazard(self, X, arm: int) -> np.ndarray:
         """:math:`h_i(k)` for every person and period had everyone been in ``arm`` (n x K)."""
@@ -209,15 +251,28 @@ def cumulative_incidence(h_out: np.ndarray, h_comp: np.ndarray | None = None) ->
     return np.cumsum(h_out * before, axis=1)
 
 
-def at_days(F: np.ndarray, days, period_days: int) -> np.ndarray:
-    """Values given at period ends (columns :math:`(k+1)P`) at ``days``, linearly interpolated
-    within a period, 0 at day 0 (n x len(days), or len(days) for one curve)."""
+def at_days(F: np.ndarray, days, period_days: int, last_end: float | None = None) -> np.ndarray:
+    """Values given at period ends at ``days``, linearly interpolated within a period, 0 at day 0
+    (n x len(days), or len(days) for one curve).
+
+    Period :math:`k` ends on day :math:`(k+1)P`, the last one on ``last_end`` when given (the
+    follow-up's ``max_days``, which may cut the last period short).
+    """
     F2 = np.atleast_2d(F)
-    ext = np.concatenate([np.zeros((F2.shape[0], 1)), F2], axis=1)
-    j = np.clip(np.asarray(days, dtype=float) / period_days, 0, F2.shape[1])
-    lo = np.minimum(np.floor(j).astype(int), F2.shape[1] - 1)
+    K = F2.shape[1]
+    d = np.asarray(days, dtype=float)
+    start_last = (K - 1) * period_days
+    end_last = float(K * period_days if last_end is None else last_end)
+    j = np.where(d <= start_last, d / period_days,
+                 (K - 1) + np.clip((d - start_last) / max(end_last - start_last, 1e-12), 0, 1))
+    j = np.clip(j, 0, K)
+    lo = np.minimum(np.floor(j).astype(int), K - 1)
     frac = j - lo
-    out = ext[:, lo] * (1 - frac) + ext[:, lo + 1] * frac
+
+    def column(k):  # value at the end of period k - 1 (0 at day 0)
+        return np.where(k[None, :] > 0, F2[:, np.maximum(k - 1, 0)], 0.0)
+
+    out = column(lo) * (1 - frac) + column(lo + 1) * frac
     return out if np.ndim(F) == 2 else out[0]
 
 
@@ -238,19 +293,36 @@ def hazard_models(time, status, a, X, freq, period_days: int, n_periods: int,
 
 def gformula_incidence(models: dict[str, PooledLogistic], X) -> dict[int, np.ndarray]:
     """Each person's predicted cumulative incidence at period ends under each arm (n x K)."""
-    out = {}
-    for arm in (0, 1):
-        h_comp = models["competing"].predict_hazard(X, arm) if "competing" in models else None
-        out[arm] = cumulative_incidence(models["outcome"].predict_hazard(X, arm), h_comp)
+    X = np.asarray(X, dtype=float).reshape(np.shape(X)[0], -1)
+    K = models["outcome"].basis_.shape[0]
+    out = {arm: np.empty((X.shape[0], K)) for arm in (0, 1)}
+    for lo in range(0, X.shape[0], CHUNK):
+        Xc = X[lo:lo + CHUNK]
+        for arm in (0, 1):
+            h_comp = (models["competing"].predict_hazard(Xc, arm) if "competing" in models
+                      else None)
+            out[arm][lo:lo + CHUNK] = cumulative_incidence(
+                models["outcome"].predict_hazard(Xc, arm), h_comp)
     return out
 
 
-def censoring_probability_before(model: PooledLogistic, X, a, periods) -> np.ndarray:
+def censoring_probability_before(model: PooledLogistic, X, a, periods) -> list[np.ndarray]:
     """:math:`G_i = \\prod_{j < k_i} (1 - c_i(j))`: uncensored through the periods before
-    ``periods[i]`` under the person's own arm (the pooled logistic censoring model)."""
+    ``k_i``, under the person's own arm (the pooled logistic censoring model).
+
+    ``periods`` is a list of arrays :math:`k` (one value per person); one result per array.
+    """
+    X = np.asarray(X, dtype=float).reshape(np.shape(X)[0], -1)
     a = np.asarray(a)
-    c = np.where(a[:, None] == 1, model.predict_hazard(X, 1), model.predict_hazard(X, 0))
-    G = np.cumprod(1.0 - c, axis=1)
-    G = np.concatenate([np.ones((G.shape[0], 1)), G], axis=1)
-    k = np.clip(np.asarray(periods, dtype=int), 0, G.shape[1] - 1)
-    return G[np.arange(G.shape[0]), k]
+    ks = [np.asarray(k, dtype=int) for k in periods]
+    out = [np.empty(X.shape[0]) for _ in ks]
+    for lo in range(0, X.shape[0], CHUNK):
+        sl = slice(lo, lo + CHUNK)
+        c = np.where(a[sl, None] == 1, model.predict_hazard(X[sl], 1),
+                     model.predict_hazard(X[sl], 0))
+        G = np.cumprod(1.0 - c, axis=1)
+        G = np.concatenate([np.ones((G.shape[0], 1)), G], axis=1)
+        rows = np.arange(G.shape[0])
+        for res, k in zip(out, ks, strict=True):
+            res[sl] = G[rows, np.clip(k[sl], 0, G.shape[1] - 1)]
+    return out

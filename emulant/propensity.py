@@ -34,6 +34,10 @@ class DesignError(ValueError):
     """A covariate cannot enter the design; the message names the column and the problem."""
 
 
+class PropensityError(ValueError):
+    """The propensity model cannot be fitted (bad shapes, a non-0/1 treatment, an empty arm)."""
+
+
 class PropensityWarning(UserWarning):
     """The propensity model met separation or did not converge (see ``PropensityModel``)."""
 
@@ -365,34 +369,23 @@ class PropensityModel:
         n, p = X.shape
         f = np.ones(n) if sample_weight is None else np.asarray(sample_weight, dtype=float)
         if a.shape != (n,) or f.shape != (n,):
-            raise ValueError(f"X has {n} rows but a has {a.shape} and sample_weight {f.shape}")
+            raise PropensityError(f"X has {n} rows but a has {a.shape} and sample_weight {f.shape}")
         if not ((a == 0.0) | (a == 1.0)).all():
-            raise ValueError("the treated indicator must be 0 or 1")
+            raise PropensityError("the treated indicator must be 0 or 1")
         names = list(columns) if columns is not None else list(
             self.column_names or [f"x{j}" for j in range(p)])
         self.warnings_ = []
         f1, f0 = f * a, f * (1.0 - a)
         t1, t0 = f1.sum(), f0.sum()
         if not (t1 > 0 and t0 > 0):
-            raise ValueError("both arms need persons with positive weight to fit a propensity model")
+            raise PropensityError("both arms need persons with positive weight to fit a propensity model")
         prep = _prepared(X)
         tot = t1 + t0
         mz = (f @ prep.Z) / tot
         vz = np.maximum((f @ prep.Z2) / tot - mz * mz, 0.0)  # weighted variance, Z scale
         live = vz > 1e-12
         rel = vz.copy()  # squared (weighted SD / s0): the ridge penalty per Z coefficient
-        problems = []
-        if len(prep.two):
-            w1, w0 = f1 @ prep.top, f0 @ prep.top
-            for j, c1, c0 in zip(prep.two, w1, w0, strict=True):
-                live[j] = (c1 + c0 > 0) and (tot - c1 - c0 > 0)
-                rel[j] = 1.0  # a two-valued column is penalised per unit of its range
-                for label, g1, g0 in (("the larger value", c1, c0),
-                                      ("the smaller value", t1 - c1, t0 - c0)):
-                    if live[j] and (g1 == 0) != (g0 == 0):
-                        arm = "treated" if g0 == 0 else "comparator"
-                        problems.append(f"{names[j]}: every person with {label} is in the {arm} "
-                                        f"arm ({int(g1 + g0)} person(s))")
+        problems = _two_valued(prep, f1, f0, names, live, rel)
         Z = prep.Z if live.all() else prep.Z[:, live]
         zn = [nm for nm, ok in zip(names, live, strict=True) if ok]
         start = np.zeros(Z.shape[1] + 1)
@@ -438,11 +431,38 @@ class PropensityModel:
         """Propensity :math:`e(x) = 1 / (1 + e^{-\\eta})` of the treated arm."""
         return expit(self.decision_function(X))
 
+    @property
+    def summary(self) -> pd.DataFrame:
+        """The fitted coefficients (original scale), intercept first."""
+        return pd.DataFrame({"term": ["(intercept)", *(self.column_names or ())],
+                             "coef": np.r_[self.intercept_, self.coef_]})
+
     def to_dict(self) -> dict[str, Any]:
         return {"converged": self.converged_, "penalized": self.penalized_,
                 "n_iter": self.n_iter_, "warnings": list(self.warnings_),
                 "intercept": self.intercept_,
                 "coef": dict(zip(self.column_names or (), map(float, self.coef_), strict=True))}
+
+
+def _two_valued(prep: _Prepared, f1: np.ndarray, f0: np.ndarray, names: list[str],
+                live: np.ndarray, rel: np.ndarray) -> list[str]:
+    """Two-valued columns: live only when both values carry weight, penalised per unit of range
+    (``live`` and ``rel`` are updated in place); returns the quasi-complete separations found
+    (one value of a column occurring in one arm only; Albert & Anderson 1984)."""
+    problems = []
+    if not len(prep.two):
+        return problems
+    t1, t0 = f1.sum(), f0.sum()
+    w1, w0 = f1 @ prep.top, f0 @ prep.top
+    for j, c1, c0 in zip(prep.two, w1, w0, strict=True):
+        live[j] = (c1 + c0 > 0) and (t1 + t0 - c1 - c0 > 0)
+        rel[j] = 1.0
+        for label, g1, g0 in (("the larger value", c1, c0), ("the smaller value", t1 - c1, t0 - c0)):
+            if live[j] and (g1 == 0) != (g0 == 0):
+                arm = "treated" if g0 == 0 else "comparator"
+                problems.append(f"{names[j]}: every person with {label} is in the {arm} arm "
+                                f"({int(g1 + g0)} person(s))")
+    return problems
 
 
 def _newton(Z: np.ndarray, a: np.ndarray, f: np.ndarray, lam: np.ndarray, beta: np.ndarray,

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -138,11 +139,16 @@ def build_sample(cohort: pd.DataFrame, protocol: Protocol, design: Any,
     from emulant.weights import estimand_weights
 
     X = np.asarray(design.transform(cohort) if X is None else X, dtype=float)
+    if X.ndim != 2 or len(X) != len(cohort):
+        raise TypeError(f"build_sample: X must be the n x p design ({len(cohort)} rows), got shape "
+                        f"{X.shape}; pass frequency weights as freq=")
     a = treatment_indicator(cohort)
     freq = np.ones(len(a)) if freq is None else np.asarray(freq, dtype=float)
     check_arms(a, freq)
     warnings: list[str] = []
-    model = PropensityModel().fit(X, a, sample_weight=freq)
+    cols = tuple(getattr(design, "columns", ()) or ())
+    names = cols if len(cols) == X.shape[1] else None
+    model = PropensityModel(column_names=names).fit(X, a, sample_weight=freq)
     e = np.asarray(model.predict(X), dtype=float)
     if not bool(getattr(model, "converged_", True)):
         warnings.append("propensity not converged")
@@ -156,9 +162,9 @@ def build_sample(cohort: pd.DataFrame, protocol: Protocol, design: Any,
     censoring = {}
     for outcome in protocol.outcomes.measured():
         m = measured_indicator(cohort, outcome.measure)
-        r, ok = censoring_weights(outcome, m, a, X, freq, PropensityModel)
+        factory = partial(PropensityModel, column_names=("arm", *names) if names else None)
+        r, ok = censoring_weights(outcome, m, a, X, freq, factory)
         if not ok:
             warnings.append("censoring model not converged")
         censoring[outcome.measure] = r
-    cols = tuple(getattr(design, "columns", ()) or ())
     return AnalysisSample(cohort, protocol, X, cols, a, freq, e, weights, censoring, tuple(warnings))

@@ -12,7 +12,9 @@ Methods (each estimand of the protocol; ``unadjusted`` once, with ``estimand`` e
 * ``ipw``: the same curves weighted by the estimand's inverse probability of treatment weights
   (Cole & Hernán 2004, Comput Methods Programs Biomed 75:45), and the weighted Cox hazard ratio;
   with ``analysis.censoring_weights`` the curve is the inverse probability of censoring weighted
-  cumulative incidence (:func:`emulant.tte_weighting.ipcw_incidence`).
+  cumulative incidence (:func:`emulant.tte_weighting.ipcw_incidence`). The hazard ratio uses
+  the treatment weights alone (censored persons leave its risk sets); it is cause-specific
+  with competing events (:mod:`emulant.cox`, with the caution on hazard ratios).
 * ``standardization``: the parametric g-formula with pooled logistic hazards
   (:mod:`emulant.gformula`).
 * ``doubly_robust``: the augmented IPW risk at each horizon (:func:`emulant.tte_weighting.aipw_risk`).
@@ -222,12 +224,12 @@ def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict
                 rows.append(c.hazard_ratio_row(est, "ipw", np.asarray(c.weights[est], float)))
         if need_models:
             v = target_weights(est, c.a, c.e, c.f)
-            curves, risk = standardized_risks(incidence, v, c.grid, c.horizons, c.P)
+            curves, risk = standardized_risks(incidence, v, c.grid, c.horizons, c.P, c.max_days)
             if "standardization" in methods:
                 rows += c.contrast_rows(est, "standardization", risk)
                 curve_rows += c.curve_rows(est, "standardization", curves)
             if "doubly_robust" in methods:
-                F_h = {g: at_days(incidence[g], c.horizons, c.P) for g in (0, 1)}
+                F_h = {g: at_days(incidence[g], c.horizons, c.P, c.max_days) for g in (0, 1)}
                 risk = aipw_risk(c.time, c.status, c.a, w, v, F_h, cens, c.horizons)
                 rows += c.contrast_rows(est, "doubly_robust", risk)
     return rows, curve_rows

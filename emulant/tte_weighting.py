@@ -30,7 +30,8 @@ def target_weights(estimand: str, a, e, freq) -> np.ndarray:
     raise SurvivalError(f"estimands: {estimand!r} is not one of {list(ESTIMANDS)}")
 
 
-def standardized_risks(incidence: dict[int, np.ndarray], v, grid, horizons, period_days: int):
+def standardized_risks(incidence: dict[int, np.ndarray], v, grid, horizons, period_days: int,
+                       last_end: float | None = None):
     """The g-formula risk under each arm, :math:`\\sum_i v_i \\hat F_i^{a}(t) / \\sum_i v_i`.
 
     Returns
@@ -41,8 +42,8 @@ def standardized_risks(incidence: dict[int, np.ndarray], v, grid, horizons, peri
     curves, risk = {}, {}
     for g, F in incidence.items():
         mean = v @ F / v.sum()
-        curves[g] = at_days(mean, grid, period_days)
-        risk[g] = dict(zip(horizons, at_days(mean, horizons, period_days), strict=True))
+        curves[g] = at_days(mean, grid, period_days, last_end)
+        risk[g] = dict(zip(horizons, at_days(mean, horizons, period_days, last_end), strict=True))
     return curves, risk
 
 
@@ -65,12 +66,10 @@ def censoring_at(time, status, a, freq, horizons, period_days: int,
     a = np.asarray(a).astype(int)
     f = np.asarray(freq, dtype=float)
     if model is not None:
-        L = last_period(t, s, period_days)
-        out = {"event": censoring_probability_before(model, X, a, L), "horizon": {}}
-        for h in horizons:
-            k = np.full(t.size, max(math.ceil(h / period_days) - 1, 0))
-            out["horizon"][h] = censoring_probability_before(model, X, a, k)
-        return out
+        ks = [last_period(t, s, period_days)]
+        ks += [np.full(t.size, max(math.ceil(h / period_days) - 1, 0)) for h in horizons]
+        G = censoring_probability_before(model, X, a, ks)
+        return {"event": G[0], "horizon": dict(zip(horizons, G[1:], strict=True))}
     g_event = np.ones(t.size)
     g_h = {h: np.ones(t.size) for h in horizons}
     for g in (0, 1):

@@ -13,8 +13,15 @@ from __future__ import annotations
 import numpy as np
 
 from synthetic_cohort import params as P
-from synthetic_cohort.baseline import (CODE, INPATIENT, OUTPATIENT, Baseline, arm_codes, logistic,
-                                      uniform_days)
+from synthetic_cohort.baseline import (
+    CODE,
+    INPATIENT,
+    OUTPATIENT,
+    Baseline,
+    arm_codes,
+    logistic,
+    uniform_days,
+)
 from synthetic_cohort.records import NONE
 from synthetic_cohort.truth import DAYS_PER_YEAR, log_rate, marker_mean, marker_measured_logit
 
@@ -55,7 +62,7 @@ def follow(rng: np.random.Generator, b: Baseline, followed: np.ndarray, t0: np.n
         return (day <= cend) & (day < t_death)
 
     d_out = np.ceil(t_out).astype(np.int64)
-    ok = (t_out < t_death) & allowed(d_out)
+    ok = (t_out < t_death) & (d_out <= cend)  # dated on or before the day of death
     hf = CODE[P.HF_CODES[0]] + rng.integers(0, len(P.HF_CODES), m)
     b.diag.add(idx[ok], day0[ok] + d_out[ok], code=hf[ok], setting=INPATIENT)
     later = d_out + uniform_days(rng, 14, 60, m)
@@ -65,7 +72,7 @@ def follow(rng: np.random.Generator, b: Baseline, followed: np.ndarray, t0: np.n
     ok = allowed(d_opd)  # outpatient heart-failure records: not the (inpatient) outcome
     b.diag.add(idx[ok], day0[ok] + d_opd[ok], code=hf[ok], setting=OUTPATIENT)
     d_nc = np.ceil(t_nc).astype(np.int64)
-    ok = (t_nc < t_death) & allowed(d_nc)
+    ok = (t_nc < t_death) & (d_nc <= cend)
     b.diag.add(idx[ok], day0[ok] + d_nc[ok], code=CODE["LNS2"], setting=OUTPATIENT)
     k = rng.poisson(1.0, m)
     rep = np.repeat(np.arange(m), k)

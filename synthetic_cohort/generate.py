@@ -37,6 +37,7 @@ TEMPLATE = HERE / "demo_protocol.yaml"
 CODELISTS = HERE / "codelists"
 TABLES = ("persons", "coverage", "dispensings", "diagnoses", "measurements", "deaths")
 FORMATS = ("parquet", "csv")
+CSV_OPTIONS = pacsv.WriteOptions(quoting_style="needed")
 OUTCOME_PARAMS = {"hf_admission": P.PRIMARY, "lens_opacity": P.NEGATIVE_CONTROL}
 NOT_FOLLOWED = ("never_initiates", "arm_record_after_death", "initiated_before_window")
 
@@ -202,8 +203,7 @@ def write_synthetic(out_dir, persons: int = 20000, seed: int = 20261201,
         if fmt == "parquet":
             replace_if_changed(out / f"{name}.parquet", lambda p, t=tab: pq.write_table(t, p))
         else:
-            opts = pacsv.WriteOptions(quoting_style="needed")
-            replace_if_changed(out / f"{name}.csv", lambda p, t=tab: pacsv.write_csv(t, p, opts))
+            replace_if_changed(out / f"{name}.csv", lambda p, t=tab: pacsv.write_csv(t, p, CSV_OPTIONS))
         for other in (".parquet", ".csv", ".csv.gz"):
             stale = out / f"{name}{other}"
             if other != f".{fmt}" and stale.exists():

@@ -106,15 +106,18 @@ TREATMENT = {"intercept": -0.45, "age10": 0.35, "male": 0.1, "cv": 0.9, "kidney"
 PRIMARY = {"rate": 0.035, "age10": 0.45, "male": 0.25, "cv": 0.7, "kidney": 0.4, "lab10": 0.25,
            "lab_missing": 0.2, "drugs": 0.12, "region": (0.0, 0.15, -0.1, 0.25, -0.2),
            "hazard_ratio": {"kestrel": 0.7, "plover": 1.0}}
-NEGATIVE_CONTROL = {"rate": 0.02, "age10": 0.6, "male": -0.2, "cv": 0.0, "kidney": 0.3,
-                    "lab10": 0.3, "lab_missing": 0.3, "drugs": 0.1,
+NEGATIVE_CONTROL = {"rate": 0.02, "age10": 0.6, "male": -0.2, "cv": 0.5, "kidney": 0.5,
+                    "lab10": 0.4, "lab_missing": 0.3, "drugs": 0.15,
                     "region": (0.0, 0.1, 0.0, 0.2, -0.1),
                     "hazard_ratio": {"kestrel": 1.0, "plover": 1.0}}
 DEATH = {"rate": 0.02, "age10": 0.9, "male": 0.2, "cv": 0.5, "kidney": 0.6, "lab10": 0.1,
          "lab_missing": 0.1, "drugs": 0.05, "region": (0.0, 0.0, 0.1, 0.1, 0.0),
          "hazard_ratio": {"kestrel": 1.0, "plover": 1.0}}
-COVERAGE_END = {"rate": 0.12, "age10": -0.2, "male": 0.0, "cv": 0.0, "kidney": 0.0, "lab10": 0.0,
-                "lab_missing": 0.2, "drugs": 0.0, "region": (0.0, 0.3, -0.2, 0.4, 0.1),
+# coverage ends (moving away, leaving the scheme) depend on the arm only: censoring is then
+# independent of the outcomes within each arm, so weighting by the propensity alone (no
+# censoring weights) recovers the truth
+COVERAGE_END = {"rate": 0.12, "age10": 0.0, "male": 0.0, "cv": 0.0, "kidney": 0.0, "lab10": 0.0,
+                "lab_missing": 0.0, "drugs": 0.0, "region": (0.0, 0.0, 0.0, 0.0, 0.0),
                 "hazard_ratio": {"kestrel": 1.1, "plover": 1.0}}
 COVERAGE_RESUME_PROB = 0.5  # after a coverage end, a new period starts after a gap
 OUTPATIENT_HF_RATE = 0.03  # outpatient heart-failure records in follow-up (not the outcome)

@@ -10,7 +10,14 @@ import pandas as pd
 import pytest
 
 from emulant import columns
-from emulant.balance import BALANCE_COLUMNS, BalanceError, balance_table, flagged, smd
+from emulant.balance import (
+    BALANCE_COLUMNS,
+    BalanceError,
+    balance_table,
+    flagged,
+    smd,
+    weighted_var,
+)
 from emulant.protocol import parse_protocol
 
 
@@ -68,6 +75,8 @@ def test_balance_table_equals_hand_computation(handmade):
     # weighted variances (w = 1,1,2 and 2,1,1: sum w = 4, sum w^2 = 6, factor 4/10):
     # treated 0.4 * 275 = 110, comparator 0.4 * 1700 = 680
     assert age["variance_ratio"] == pytest.approx(110 / 680)
+    assert weighted_var(np.array([50.0, 60, 70]), np.array([1.0, 1, 2])) == pytest.approx(110)
+    assert weighted_var(np.array([40.0, 50, 90]), np.ones(3)) == pytest.approx(700)
     # prior_event (binary formula): p 2/3 vs 1/3 -> SD sqrt(2/9); weighted 3/4 vs 1/4
     pe = ate.loc[("prior_event", "")]
     assert pe["smd_unweighted"] == pytest.approx((1 / 3) / math.sqrt(2 / 9))

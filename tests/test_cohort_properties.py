@@ -24,12 +24,17 @@ from emulant.protocol import parse_protocol
 
 ORIGIN = dt.date(2018, 1, 1)
 DISP_CODES = ["RXA1", "RXA", "RXB1", "RXB10", "RXC1"]
-DIAG_CODES = ["DM2", "HF5", "HF59", "HF6", "MI1"]
+DIAG_CODES = ["DM2", "HF5", "HF59", "HF6", "HF5", "MI1"]
 STEPS = ["same_day", "age", "coverage_before", "washout", "require:t2d", "exclude:mi"]
 
 
 def day(k: int) -> dt.date:
     return ORIGIN + dt.timedelta(days=k)
+
+
+def offsets(lo: int, hi: int, edges: list[int]):
+    """Days in [lo, hi], half of the time one of the rule's edges (so ties and ends come up)."""
+    return st.one_of(st.sampled_from(edges), st.integers(lo, hi))
 
 
 @st.composite
@@ -38,7 +43,7 @@ def scenarios(draw):
     window, so most examples reach every step and both arms; the protocol's numbers are drawn
     too, and the edges (days -1/0/1, window ends) come up often because offsets are small."""
     entry = (draw(st.integers(-100, 0)), draw(st.integers(0, 300)))
-    req = draw(st.integers(-400, 0))
+    req = draw(st.sampled_from([-400, -365, -30, 0]))
     par = {
         "entry": entry, "age_min": draw(st.sampled_from([None, None, 57, 58])),
         "age_max": draw(st.sampled_from([None, None, 58, 59])),
@@ -48,33 +53,55 @@ def scenarios(draw):
         "max_days": draw(st.integers(30, 400)), "admin": draw(st.integers(300, 700)),
     }
     n = draw(st.integers(4, 12))
-    near = st.integers(-120, 120)
+    near = offsets(-120, 120, [-101, -100, -1, 0, 1, 2])
     persons, cov, disp, diag, meas, deaths = [], [], [], [], [], []
     for pid in range(1, n + 1):
-        t = draw(st.integers(*entry)) + draw(st.sampled_from([0, 0, 0, -1, 1, -150, 150]))
-        birth = day(t) - dt.timedelta(days=draw(st.integers(57 * 365 - 200, 59 * 365 + 200)))
+        t = draw(st.integers(*entry)) + draw(st.sampled_from([0, 0, 0, 0, 0, -1, 1, -150]))
+        t0, years = day(t), draw(st.sampled_from([57, 58, 58, 58, 59, 60]))
+        birth = (t0.replace(year=t0.year - years, day=min(t0.day, 28))
+                 - dt.timedelta(days=draw(offsets(-300, 300, [-1, 0, 1]))))
         if draw(st.integers(0, 9)) == 0:
             birth = dt.date(1960, 2, 29)
         persons.append((pid, birth.isoformat(), draw(st.sampled_from("FM"))))
-        if draw(st.integers(0, 4)):
-            cov.append((pid, day(t - 400).isoformat(), day(t + draw(st.integers(0, 500))).isoformat()))
+        if draw(st.integers(0, 9)):  # one long period, often split by no gap, one day or more
+            g, gap = draw(st.sampled_from([-200, -1, 0, 50])), draw(st.sampled_from([0, 1, 2]))
+            end = t + draw(st.integers(0, 500))
+            if draw(st.booleans()):
+                cov.append((pid, day(t - 400).isoformat(), day(t + g).isoformat()))
+                cov.append((pid, day(t + g + 1 + gap).isoformat(),
+                            day(max(end, t + g + 5)).isoformat()))
+            else:
+                cov.append((pid, day(t - 400).isoformat(), day(end).isoformat()))
         for _ in range(draw(st.integers(0, 2))):
             s = t + draw(st.integers(-500, 200))
             cov.append((pid, day(s).isoformat(), day(s + draw(st.integers(0, 400))).isoformat()))
-        disp.append((pid, day(t).isoformat(), draw(st.sampled_from(["RXA1", "RXB1", "RXA"]))))
-        for _ in range(draw(st.integers(0, 3))):
+        disp.append((pid, day(t).isoformat(), draw(st.sampled_from(["RXA1", "RXB1", "RXA", "RXB1"]))))
+        for _ in range(draw(st.integers(0, 2))):
             disp.append((pid, day(t + draw(st.sampled_from([0, 0, 1, -1, -30, -31, -90, -91, 40])))
                          .isoformat(), draw(st.sampled_from(DISP_CODES))))
-        if draw(st.integers(0, 4)):
-            diag.append((pid, day(t - draw(st.integers(0, 200))).isoformat(), "DM2", "outpatient"))
-        for _ in range(draw(st.integers(0, 4))):
+        if draw(st.integers(0, 9)):
+            diag.append((pid, day(t - draw(offsets(0, 400, [0, 1, 29, 30, 31]))).isoformat(), "DM2",
+                         "outpatient"))
+        for _ in range(draw(st.integers(0, 3))):
             diag.append((pid, day(t + draw(near)).isoformat(), draw(st.sampled_from(DIAG_CODES)),
                          draw(st.sampled_from(["inpatient", "outpatient"]))))
         for _ in range(draw(st.integers(0, 3))):
-            meas.append((pid, day(t + draw(st.integers(-110, 40))).isoformat(), "LAB7",
+            meas.append((pid, day(t + draw(offsets(-110, 40, [-101, -100, -1, 0, 0, 0, 10, 20, 20, 30, 31])))
+                         .isoformat(), "LAB7",
                          draw(st.integers(1, 4))))
+        if draw(st.booleans()):  # two values on one day: the tie rules of last and nearest
+            k = t + draw(st.sampled_from([-100, -1, 0, 20]))
+            pair = draw(st.sampled_from([(1, 3), (4, 2)]))
+            meas += [(pid, day(k).isoformat(), "LAB7", v) for v in pair]
         if draw(st.integers(0, 4)) == 0:
-            deaths.append((pid, day(t + draw(st.integers(-5, 300))).isoformat()))
+            deaths.append((pid, day(t + draw(offsets(-5, 300, [0, 1, 2, 30]))).isoformat()))
+    if draw(st.integers(0, 6)):  # usually two anchors who pass every step, one per arm
+        for pid, code in ((n + 1, "RXA1"), (n + 2, "RXB1")):
+            t0 = day(entry[0])
+            persons.append((pid, t0.replace(year=t0.year - 58, day=min(t0.day, 28)).isoformat(), "F"))
+            cov.append((pid, day(entry[0] - 400).isoformat(), day(900).isoformat()))
+            disp.append((pid, t0.isoformat(), code))
+            diag.append((pid, day(entry[0] + req).isoformat(), "DM2", "outpatient"))
     return {"persons": persons, "coverage": cov, "dispensings": disp, "diagnoses": diag,
             "measurements": meas, "deaths": deaths}, par
 

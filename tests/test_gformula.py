@@ -93,6 +93,8 @@ def test_cumulative_incidence_and_interpolation_hand_computation():
     F = np.array([0.1, 0.3, 0.4])
     np.testing.assert_allclose(at_days(F, [0, 15, 30, 45, 90, 120], P),
                                [0, 0.05, 0.1, 0.2, 0.4, 0.4])
+    # a last period cut short at day 70: it ends there
+    np.testing.assert_allclose(at_days(F, [65, 70, 90], P, last_end=70), [0.35, 0.4, 0.4])
 
 
 def test_spline_basis_shape():
@@ -294,3 +296,23 @@ def test_bad_cohort_column_is_named():
     bad.loc[3, columns.end_reason("event")] = "lost"
     with pytest.raises(SurvivalError, match="row 3"):
         outcome_arrays(bad, "event")
+
+
+def test_unadjusted_only_without_competing_events(simulated):
+    # competing events recoded as censoring: Aalen–Johansen is then 1 - Kaplan–Meier
+    cohort, _ = simulated
+    cohort = cohort.copy()
+    col = columns.end_reason("event")
+    cohort[col] = cohort[col].replace({"competing": "coverage_end"})
+    prot = _protocol(methods=(), competing=False, hazard_ratio=False)
+    rows, curves = time_to_event_estimates(_sample(cohort, prot), "event")
+    assert {r["method"] for r in rows} == {"unadjusted"}
+    assert {r["measure"] for r in rows} == {"risk", "risk_difference", "risk_ratio", "rate"}
+    from lifelines import KaplanMeierFitter
+
+    t, s = outcome_arrays(cohort, "event")
+    m = cohort.treated.to_numpy() == 1
+    ref = KaplanMeierFitter().fit(t[m], s[m] == 1)
+    r365 = next(r["estimate"] for r in rows if r["measure"] == "risk" and r["arm"] == "drug_a"
+                and r["horizon_day"] == 365)
+    assert r365 == pytest.approx(1 - float(ref.survival_function_at_times(365).iloc[0]), abs=1e-12)

@@ -198,3 +198,13 @@ def test_quadratic_and_errors_name_the_column():
                      "quadratic")
     assert d.columns == ("age", "age^2", "sex[M]")
     np.testing.assert_array_equal(d.transform(cohort.iloc[:3])[:, 1], [1600, 2500, 3600])
+
+
+def test_refit_after_modifying_the_design_in_place_is_not_stale():
+    # The per-design preparation is cached for bootstrap refits; a changed array is re-prepared.
+    rng = np.random.default_rng(8)
+    X = rng.normal(size=(400, 2))
+    a = (rng.random(400) < 1 / (1 + np.exp(-X[:, 0]))).astype(float)
+    first = PropensityModel().fit(X, a).coef_.copy()
+    X[:, 0] *= 2.0
+    np.testing.assert_allclose(PropensityModel().fit(X, a).coef_, first / [2.0, 1.0], rtol=1e-8)

@@ -203,7 +203,7 @@ def _crude(folder: Path, outcome: str, horizon: int) -> tuple[float, float]:
 def test_unadjusted_comparison_is_confounded(tmp_path):
     # Confounding by indication: the crude risk difference is far (> 4 SE) from the true ATE,
     # for the primary outcome and for the negative control (whose true difference is 0).
-    truth = G.write_synthetic(tmp_path, persons=8000, seed=11)
+    truth = G.write_synthetic(tmp_path, persons=12000, seed=11)
     for outcome in ("hf_admission", "lens_opacity"):
         crude, se = _crude(tmp_path, outcome, 730)
         true = truth["time_to_event"][outcome]["ATE"]["risk_difference"]["730"]
