@@ -111,7 +111,7 @@ def summary_sql(summary: str, cond: str) -> str:
         return f"count(DISTINCT code) FILTER (WHERE {cond})"
     vcond = f"({cond}) AND value IS NOT NULL"
     if summary == "last":
-        return f"arg_max(value, struct_pack(d := day, v := -value)) FILTER (WHERE {vcond})"
+        return f"arg_max(value, struct_pack(d := day, v := value)) FILTER (WHERE {vcond})"
     if summary in ("mean", "min", "max"):
         fn = {"mean": "avg", "min": "min", "max": "max"}[summary]
         return f"{fn}(value) FILTER (WHERE {vcond})"

@@ -335,6 +335,7 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
     """
     from emulant.bootstrap import attach_intervals, run_bootstrap
     from emulant.covariates import covariate_kinds
+    from emulant.evalue import e_value_rows
     from emulant.propensity import DesignError, build_design
     from emulant.weights import WeightsError
 
@@ -353,6 +354,7 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
     boot = run_bootstrap(cohort, protocol, design, X, rows, curves, workers=workers,
                          progress=progress, start_method=start_method)
     rows, curves = attach_intervals(rows, curves, boot, protocol.analysis.bootstrap.interval)
+    rows = rows + e_value_rows(rows)
     account = boot.account()
     account["point_estimate_warnings"] = list(point.warnings)
     return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account)

@@ -143,6 +143,10 @@ def curves(cv: pd.DataFrame, protocol: Protocol) -> list[dict]:
     """
     m = protocol.report.min_cell
     arms = list(protocol.strategies.arm_names)
+    if "outcome" in cv.columns:  # the primary outcome's curves; other outcomes are in curves.csv
+        cv = cv[cv["outcome"].astype(str) == str(protocol.outcomes.primary)]
+        if cv.empty:
+            return []
     grid = dc.coarse_grid(pd.to_numeric(cv["day"], errors="coerce").dropna().tolist())
     out = []
     ests = [""] + list(protocol.estimands)
