@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
+from emulant.errors import EmulantError
 from emulant.propensity import _is01
 from emulant.weights import resolve_kinds, treated_indicator
 
@@ -35,7 +36,7 @@ BALANCE_COLUMNS = ("covariate", "level", "estimand", "mean_treated", "mean_compa
                    "smd_unweighted", "smd_weighted", "variance_ratio")
 
 
-class BalanceError(ValueError):
+class BalanceError(EmulantError, ValueError):
     """The cohort and the weights do not line up, or a column is missing."""
 
 

@@ -32,6 +32,8 @@ from typing import Any
 
 import numpy as np
 
+from emulant.errors import EmulantError
+
 ROW_KEY = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
            "comparator")
 CURVE_KEY = ("outcome", "contrast", "estimand", "method", "arm", "day")  # outcome when present
@@ -42,7 +44,7 @@ _THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
                 "VECLIB_MAXIMUM_THREADS", "NUMEXPR_NUM_THREADS")
 
 
-class BootstrapError(Exception):
+class BootstrapError(EmulantError):
     """Too many failed replicates (above 5%); the message gives the counts and the reasons."""
 
 

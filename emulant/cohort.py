@@ -108,7 +108,7 @@ def _make_coverage(con) -> None:
             SELECT *, max(e) OVER (PARTITION BY person_id ORDER BY s, e
                 ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) AS prev_end FROM c),
         g AS (
-            SELECT *, sum(CASE WHEN prev_end IS NULL OR s > prev_end THEN 1 ELSE 0 END)
+            SELECT *, sum(CASE WHEN prev_end IS NULL OR s > prev_end + 1 THEN 1 ELSE 0 END)
                 OVER (PARTITION BY person_id ORDER BY s, e ROWS UNBOUNDED PRECEDING) AS grp FROM o),
         m AS (SELECT person_id, grp, min(s) AS s, max(e) AS e FROM g GROUP BY person_id, grp)
         SELECT m.person_id, date_diff('day', i.time_zero, m.s) AS cov_start_day,

@@ -30,6 +30,7 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
+from emulant.errors import EmulantError
 from emulant.protocol import MeasuredOutcome, Protocol
 from emulant.sample import AnalysisSample, SampleError, build_sample, measured_indicator
 
@@ -42,7 +43,7 @@ CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low
 CONTRAST = "intention_to_treat"
 
 
-class EstimationError(Exception):
+class EstimationError(EmulantError):
     """An analysis that cannot be run; the message names the column, outcome or setting."""
 
 

@@ -19,6 +19,7 @@ from typing import Any
 
 import duckdb
 
+from emulant.errors import EmulantError
 from emulant.protocol import Protocol
 
 SUFFIXES = (".parquet", ".csv", ".csv.gz")
@@ -45,7 +46,7 @@ _INTEGER_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYI
 DEFAULT_DUCKDB = {"threads": 2, "memory_limit": "4GB", "temp_directory": None}
 
 
-class ExtractError(Exception):
+class ExtractError(EmulantError):
     """Raised with every problem found in an extract; ``problems`` is a list of one-line messages."""
 
     def __init__(self, problems: list[str], path: str | Path | None = None):

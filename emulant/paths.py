@@ -8,13 +8,14 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+from emulant.errors import EmulantError
 from emulant.extract import find_tables
 from emulant.protocol import ProtocolError, load_protocol
 
 SYNTHETIC_TABLES = ("persons", "coverage", "dispensings", "diagnoses", "measurements", "deaths")
 
 
-class WorkflowConfigError(Exception):
+class WorkflowConfigError(EmulantError):
     """A run-time setting that cannot be used; the message names the key and the path."""
 
 

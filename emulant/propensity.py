@@ -21,6 +21,7 @@ import pandas as pd
 from scipy.special import expit
 
 from emulant import columns
+from emulant.errors import EmulantError
 
 CONTINUOUS = ("spline", "quadratic", "linear")
 #: Knot quantiles for a restricted cubic spline with 4 and 3 knots (Harrell 2015, Regression
@@ -30,11 +31,11 @@ KNOTS_3 = (0.10, 0.50, 0.90)
 _RANK_TOL = 1e-8  # a column whose residual on the earlier ones is below this share is dependent
 
 
-class DesignError(ValueError):
+class DesignError(EmulantError, ValueError):
     """A covariate cannot enter the design; the message names the column and the problem."""
 
 
-class PropensityError(ValueError):
+class PropensityError(EmulantError, ValueError):
     """The propensity model cannot be fitted (bad shapes, a non-0/1 treatment, an empty arm)."""
 
 

@@ -18,6 +18,8 @@ from typing import Any
 
 import yaml
 
+from emulant.errors import EmulantError
+
 BUILTIN_SOURCES = ("persons", "coverage", "deaths")
 EVENT_SOURCES = ("dispensings", "diagnoses", "measurements")
 SUMMARIES = ("any", "count", "last", "mean", "min", "max", "distinct_codes")
@@ -30,7 +32,7 @@ METHODS = ("unadjusted", "ipw", "standardization", "doubly_robust")
 DEATH = "death"
 
 
-class ProtocolError(Exception):
+class ProtocolError(EmulantError):
     """Raised with every problem found; ``problems`` is a list of one-line messages."""
 
     def __init__(self, problems: list[str], path: str | Path | None = None):

@@ -16,12 +16,13 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
+from emulant.errors import EmulantError
 from emulant.protocol import MeasuredOutcome, Protocol
 
 TREATED = "treated"  # cohort.parquet: 1 for strategies.treated (see emulant/columns.py docstring)
 
 
-class SampleError(Exception):
+class SampleError(EmulantError):
     """A sample that cannot be analysed (an arm without anyone, a model that did not converge).
 
     In a bootstrap replicate it marks the replicate as failed; ``reason`` is a short tag that

@@ -21,6 +21,7 @@ from typing import Any
 
 import pandas as pd
 
+from emulant.errors import EmulantError
 from emulant.protocol import load_protocol
 
 log = logging.getLogger("emulant")
@@ -146,19 +147,6 @@ def archive_report(input: Any, output: Any, params: Any) -> None:
 # ----------------------------------------------------------------------------- entry
 
 
-def user_errors() -> tuple[type[BaseException], ...]:
-    """The exceptions a user's input can cause: reported as a message, never a traceback."""
-    from emulant.protocol import ProtocolError
-
-    errors: list[type[BaseException]] = [ProtocolError]
-    for mod, name in (("emulant.extract", "ExtractError"), ("emulant.cohort", "CohortError"),
-                      ("emulant.effects", "EstimationError"), ("emulant.bootstrap", "BootstrapError"),
-                      ("emulant.paths", "WorkflowConfigError")):
-        with contextlib.suppress(ImportError, AttributeError):
-            errors.append(getattr(__import__(mod, fromlist=[name]), name))
-    return tuple(errors)
-
-
 def run(snakemake: Any, stage: Callable[[Any, Any, Any], None]) -> None:
     """Run one stage under Snakemake: log to the rule's log, our errors as exit code 2."""
     logfile = snakemake.log[0] if len(snakemake.log) else None
@@ -172,7 +160,7 @@ def run(snakemake: Any, stage: Callable[[Any, Any, Any], None]) -> None:
     t0 = time.perf_counter()
     try:
         stage(snakemake.input, snakemake.output, snakemake.params)
-    except user_errors() as exc:
+    except EmulantError as exc:
         log.error("rule %s stopped: %s", snakemake.rule, exc)
         sys.exit(2)
     log.info("rule %s done in %.1f s", snakemake.rule, time.perf_counter() - t0)

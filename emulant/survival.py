@@ -12,11 +12,13 @@ from __future__ import annotations
 
 import numpy as np
 
+from emulant.errors import EmulantError
+
 CENSORED, OUTCOME, COMPETING = 0, 1, 2
 DAYS_PER_YEAR = 365.25
 
 
-class SurvivalError(ValueError):
+class SurvivalError(EmulantError, ValueError):
     """Bad time-to-event input; the message names the array (or cohort column) and the row."""
 
 

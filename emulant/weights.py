@@ -13,12 +13,13 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
+from emulant.errors import EmulantError
 from emulant.propensity import PropensityModel, _is01, build_design
 
 ESTIMANDS = ("ATE", "ATT", "ATO")
 
 
-class WeightsError(ValueError):
+class WeightsError(EmulantError, ValueError):
     """Weights cannot be formed (bad estimand, propensity outside (0, 1), bad input)."""
 
 

@@ -318,6 +318,8 @@ def test_every_person_against_reference(scenario):
 
 
 def test_synthetic_eligible_counts_equal_the_generator(tmp_path):
+    """The generator decides eligibility person by person in its own code (numpy, no SQL); the
+    cohort's counts per arm and per step must equal its truth on a 5,000-person extract."""
     gen = pytest.importorskip("synthetic_cohort.generate")
     from emulant.protocol import load_protocol
 
@@ -326,3 +328,7 @@ def test_synthetic_eligible_counts_equal_the_generator(tmp_path):
     res = build_cohort(open_extract(tmp_path, protocol, {"threads": 2}), protocol)
     counts = res.cohort.arm.value_counts().to_dict()
     assert counts == {k: int(v) for k, v in truth["eligible"]["by_arm"].items()}
+    assert len(res.cohort) == truth["eligible"]["n"]
+    if "attrition" in truth:  # the generator's own step counts, step by step
+        want = [(r["step"], int(r["remaining"])) for r in truth["attrition"]]
+        assert list(zip(res.attrition.step, res.attrition.remaining, strict=True)) == want

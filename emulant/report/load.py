@@ -9,6 +9,7 @@ from typing import Any
 import pandas as pd
 
 from emulant import columns as col
+from emulant.errors import EmulantError
 from emulant.protocol import Protocol
 
 DESIGN_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weights.parquet",
@@ -16,7 +17,7 @@ DESIGN_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weight
 OUTCOME_FILES = ("estimates.csv", "curves.csv", "bootstrap.json")
 
 
-class ReportError(Exception):
+class ReportError(EmulantError):
     """A results file the report needs is unreadable or lacks a column; the message names it."""
 
 

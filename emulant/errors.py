@@ -1,0 +1,10 @@
+"""The one base class of the errors a user's input can cause.
+
+Every module's error derives from :class:`EmulantError`; its message names the file, table,
+column, row or key and what was expected. The command line and the workflow scripts print it and
+exit with code 2, never with a traceback.
+"""
+
+
+class EmulantError(Exception):
+    """An input problem, reported to the user as its message alone."""
