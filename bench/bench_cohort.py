@@ -7,7 +7,8 @@ DuckDB's own threads and buffers) belongs to that stage alone:
 * ``floor``: DuckDB scans every input table once (every column hashed), the least any stage
   reading the extract can cost;
 * ``check``: ``emulant.extract.check_extract`` (when it exists);
-* ``cohort``: ``open_extract`` + ``build_cohort``.
+* ``cohort``: ``open_extract`` + ``build_cohort``; its cohort is compared with the generator's
+  truth (eligible persons per arm).
 
 It prints wall time, input rows per second, peak memory and the ratio to the floor. Target
 (issue 3): check and cohort under 60 s wall on 2 cores, peak under 4 GiB.
@@ -41,7 +42,15 @@ def ensure_extract(out: Path = OUT, persons: int = PERSONS) -> float:
 
 
 def _peak_gib() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20  # KiB on Linux
+    """This process's peak resident set size in GiB: ``VmHWM`` from /proc (Linux), which a new
+    program starts afresh, unlike ``ru_maxrss``, which Linux carries over from the parent across
+    ``execve``; ``ru_maxrss`` (KiB) where /proc is absent."""
+    status = Path("/proc/self/status")
+    if status.is_file():
+        for line in status.read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 2**20
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20
 
 
 def _child(stage: str, folder: Path) -> dict:
@@ -72,7 +81,8 @@ def _child(stage: str, folder: Path) -> dict:
         from emulant.extract import open_extract
 
         res = build_cohort(open_extract(folder, protocol, SETTINGS), protocol)
-        extra = {"cohort": int(len(res.cohort)), "columns": int(res.cohort.shape[1])}
+        extra = {"cohort": int(len(res.cohort)), "columns": int(res.cohort.shape[1]),
+                 "by_arm": {str(k): int(v) for k, v in res.cohort.arm.value_counts().items()}}
     return {"seconds": time.perf_counter() - t0, "peak_gib": _peak_gib(), **extra}
 
 
@@ -100,7 +110,10 @@ def main() -> dict:
         print(f"{stage:>7}: {f['seconds']:6.1f} s wall, {rows / f['seconds']:>12,.0f} rows/s, "
               f"peak {f['peak_gib']:.2f} GiB, {f['seconds'] / floor:5.1f} x floor")
     c = figures["cohort"]
-    print(f"cohort: {c['cohort']:,} persons x {c['columns']} columns")
+    truth = json.loads((OUT / "truth.json").read_text())["eligible"]["by_arm"]
+    same = c["by_arm"] == {k: int(v) for k, v in truth.items()}
+    print(f"cohort: {c['cohort']:,} persons x {c['columns']} columns; per arm {c['by_arm']} "
+          f"({'equals' if same else 'DIFFERS from'} the generator's truth {truth})")
     total = sum(f.get("seconds", 0.0) for s, f in figures.items() if s != "floor")
     peak = max(f.get("peak_gib", 0.0) for f in figures.values())
     ok = total < TARGET_S and peak < TARGET_GIB

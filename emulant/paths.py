@@ -41,7 +41,7 @@ def protocol_files(protocol_path: str) -> list[str]:
         if c.codes_file:
             f = Path(c.codes_file)
             files.append(str(f if f.is_absolute() else Path(protocol_path).parent / f))
-    return files
+    return list(dict.fromkeys(files))
 
 
 def extract_files(extract_dir: str, synthetic: bool) -> list[str]:

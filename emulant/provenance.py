@@ -160,16 +160,19 @@ def compare_with_previous(reports_dir: str | Path, manifest: dict[str, Any],
         e0 = pd.read_csv(folder / "estimates.csv", keep_default_na=False, na_values=[""])
         e1 = pd.read_csv(results / "estimates.csv", keep_default_na=False, na_values=[""])
         key = [k for k in ESTIMATE_KEY if k in e0.columns and k in e1.columns]
-        for frame in (e0, e1):
-            frame[key] = frame[key].astype(str)
-        m = e1.merge(e0[key + ["estimate"]], on=key, how="left", suffixes=("", "_previous"))
+        join = [f"_key_{k}" for k in key]
+        for frame in (e0, e1):  # join on text so that empty cells and numbers compare alike
+            frame[join] = frame[key].astype(str).to_numpy()
+        m = e1.merge(e0[join + ["estimate"]], on=join, how="left", suffixes=("", "_previous"))
         rows = []
         for r in m.to_dict("records"):
-            shift = r["estimate"] - r["estimate_previous"] if pd.notna(r.get("estimate_previous")) else None
+            before_value = r.get("estimate_previous")
+            shift = r["estimate"] - before_value if pd.notna(before_value) else None
             se = r.get("se")
-            rows.append({**{k: r[k] for k in key}, "previous": r.get("estimate_previous"), "current": r["estimate"],
+            rows.append({**{k: None if pd.isna(r[k]) else r[k] for k in key},
+                         "previous": None if pd.isna(before_value) else before_value, "current": r["estimate"],
                          "shift": shift,
-                         "shift_in_se": shift / se if shift is not None and se and pd.notna(se) and se > 0 else None})
+                         "shift_in_se": shift / se if shift is not None and pd.notna(se) and se > 0 else None})
         out["estimates"] = rows
     t0, t1 = prev.get("protocol", {}).get("text", ""), manifest.get("protocol", {}).get("text", "")
     if t0 != t1:
