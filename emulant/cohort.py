@@ -23,6 +23,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import duckdb
 import pandas as pd
 
 from emulant import columns as C
@@ -164,7 +165,8 @@ def _plan_steps(pl: Planner, p: Protocol, steps_only: bool) -> list[tuple[str, s
                           "(missing: exclude)", f"cv_{i} IS NULL"))
     cc = [(j, m) for j, m in enumerate(p.outcomes.measured()) if m.missing == "complete_case"]
     if cc:
-        what = "; ".join(f"{m.measure} in {_days(m.at_day - m.tolerance_days, m.at_day + m.tolerance_days)}"
+        what = "; ".join(f"{m.measure} in "
+                         f"{_days(m.at_day - m.tolerance_days, m.at_day + m.tolerance_days)}"
                          + (f" and a baseline in {_days(-m.tolerance_days, 0)}"
                             if m.change_from_baseline else "") for _, m in cc)
         steps.append(("outcome_measured", f"measured outcome recorded: {what}",
@@ -351,14 +353,21 @@ def build_cohort(extract: Extract, protocol: Protocol, steps_only: bool = False)
     not available", Am J Epidemiol 2016;183:758-764, with the exact day rules of §3a.
     """
     con, p = extract.con, protocol
-    _make_init(con, extract, p)
-    _make_coverage(con)
-    pl = Planner(extract, p)
-    steps = _plan_steps(pl, p, steps_only)
-    tables = make_aggregates(con, extract, pl.plans)
-    _select_all(con, p, pl, tables, steps)
-    att, by_arm = _attrition(con, p, steps)
-    _check_not_empty(att, by_arm, p.strategies.arm_names)
-    if steps_only:
-        return CohortResult(att, None)
-    return CohortResult(att, _cohort_frame(con, p))
+    try:
+        _make_init(con, extract, p)
+        _make_coverage(con)
+        pl = Planner(extract, p)
+        steps = _plan_steps(pl, p, steps_only)
+        tables = make_aggregates(con, extract, pl.plans)
+        _select_all(con, p, pl, tables, steps)
+        att, by_arm = _attrition(con, p, steps)
+        _check_not_empty(att, by_arm, p.strategies.arm_names)
+        return CohortResult(att, None if steps_only else _cohort_frame(con, p))
+    except duckdb.OutOfMemoryException as exc:
+        limit = con.execute("SELECT current_setting('memory_limit')").fetchone()[0]
+        raise CohortError(f"DuckDB ran out of memory building the cohort of {extract.path} "
+                          f"(memory_limit {limit}): raise duckdb.memory_limit or lower "
+                          f"duckdb.threads in the config ({str(exc).splitlines()[0]})") from None
+    except duckdb.Error as exc:
+        raise CohortError(f"building the cohort of {extract.path} failed in DuckDB: "
+                          f"{str(exc).splitlines()[0]}") from None

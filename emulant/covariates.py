@@ -1,4 +1,4 @@
-"""Baseline covariates: code matching, window summaries in SQL, missing values, kinds (CONTRACTS §3a).
+"""Baseline covariates: code matching, window summaries in SQL, missing values, kinds (§3a).
 
 The cohort builder (:mod:`emulant.cohort`) asks this module for SQL pieces: the condition that a
 record belongs to a concept (:func:`concept_condition`), the completed-years age

@@ -59,8 +59,16 @@ def write_parquet(path: str | Path, df: pd.DataFrame) -> None:
         df.to_parquet(tmp, index=False)
 
 
-def _protocol_path(params: Any) -> str:
-    return str(params.protocol)
+def _protocol_path(input: Any) -> str:
+    """The protocol file: the first of the rule's ``protocol`` inputs (the rest are its code lists)."""
+    files = input.protocol
+    return str(files if isinstance(files, str | Path) else files[0])
+
+
+def _extract_dir(input: Any) -> Path:
+    """The extract folder: the one holding the rule's table files."""
+    tables = input.tables
+    return Path(tables if isinstance(tables, str | Path) else tables[0]).parent
 
 
 # ----------------------------------------------------------------------------- stages
@@ -69,14 +77,14 @@ def _protocol_path(params: Any) -> str:
 def synthesize_extract(input: Any, output: Any, params: Any) -> None:
     from synthetic_cohort.generate import write_synthetic
 
-    write_synthetic(params.out, persons=int(params.persons), seed=int(params.seed), fmt="parquet")
+    write_synthetic(Path(output.truth).parent, persons=int(params.persons), seed=int(params.seed), fmt="parquet")
 
 
 def check_extract(input: Any, output: Any, params: Any) -> None:
     from emulant.extract import check_extract as check
 
-    protocol = load_protocol(_protocol_path(params))
-    report = check(params.extract, protocol, dict(params.duckdb))
+    protocol = load_protocol(_protocol_path(input))
+    report = check(_extract_dir(input), protocol, dict(params.duckdb))
     for w in report.get("warnings", []):
         log.warning("%s", w)
     write_json(output.check, report)
@@ -86,8 +94,8 @@ def build_cohort(input: Any, output: Any, params: Any) -> None:
     from emulant.cohort import build_cohort as build
     from emulant.extract import open_extract
 
-    protocol = load_protocol(_protocol_path(params))
-    extract = open_extract(params.extract, protocol, dict(params.duckdb))
+    protocol = load_protocol(_protocol_path(input))
+    extract = open_extract(_extract_dir(input), protocol, dict(params.duckdb))
     res = build(extract, protocol)
     log.info("attrition:\n%s", res.attrition.to_string(index=False))
     write_csv(output.attrition, res.attrition)
@@ -97,7 +105,7 @@ def build_cohort(input: Any, output: Any, params: Any) -> None:
 def fit_weights(input: Any, output: Any, params: Any) -> None:
     from emulant.weights import fit_weights as fit
 
-    protocol = load_protocol(_protocol_path(params))
+    protocol = load_protocol(_protocol_path(input))
     weights, positivity = fit(pd.read_parquet(input.cohort), protocol)
     write_parquet(output.weights, weights)
     write_json(output.positivity, positivity)
@@ -106,7 +114,7 @@ def fit_weights(input: Any, output: Any, params: Any) -> None:
 def check_balance(input: Any, output: Any, params: Any) -> None:
     from emulant.balance import balance_table
 
-    protocol = load_protocol(_protocol_path(params))
+    protocol = load_protocol(_protocol_path(input))
     table = balance_table(pd.read_parquet(input.cohort), pd.read_parquet(input.weights), protocol)
     write_csv(output.balance, table)
 
@@ -114,7 +122,7 @@ def check_balance(input: Any, output: Any, params: Any) -> None:
 def estimate_effects(input: Any, output: Any, params: Any) -> None:
     from emulant.effects import estimate_effects as estimate
 
-    protocol = load_protocol(_protocol_path(params))
+    protocol = load_protocol(_protocol_path(input))
     res = estimate(pd.read_parquet(input.cohort), protocol, workers=int(params.workers),
                    progress=sys.stderr.isatty())
     write_csv(output.estimates, res.estimates)
@@ -126,12 +134,13 @@ def render_report(input: Any, output: Any, params: Any) -> None:
     from emulant import provenance
     from emulant.report import render_report as render
 
-    protocol = load_protocol(_protocol_path(params))
+    protocol = load_protocol(_protocol_path(input))
     kind = "design" if params.design else "analysis"
-    manifest = provenance.build_manifest(protocol, params.results, params.reports, kind=kind)
-    comparison = provenance.compare_with_previous(params.reports, manifest, params.results)
+    results = Path(input.check).parent
+    manifest = provenance.build_manifest(protocol, results, params.reports, kind=kind)
+    comparison = provenance.compare_with_previous(params.reports, manifest, results)
     with atomic(output.report) as tmp:
-        render(params.results, protocol, tmp, manifest=manifest, comparison=comparison,
+        render(results, protocol, tmp, manifest=manifest, comparison=comparison,
                design=bool(params.design))
     write_json(output.manifest, manifest)
 
@@ -139,7 +148,8 @@ def render_report(input: Any, output: Any, params: Any) -> None:
 def archive_report(input: Any, output: Any, params: Any) -> None:
     from emulant import provenance
 
-    entry = provenance.archive_run(input.manifest, input.report, params.results, params.reports)
+    entry = provenance.archive_run(input.manifest, input.report, Path(input.check).parent,
+                                   params.reports)
     log.info("archived to %s", entry["folder"])
     write_json(output.archived, entry)
 

@@ -2,7 +2,7 @@
 
 from typing import TYPE_CHECKING
 
-from emulant.stages import synthesize_extract, run
+from emulant.stages import run, synthesize_extract
 
 if TYPE_CHECKING:  # for editors; Snakemake injects the object
     from snakemake.script import snakemake

@@ -60,8 +60,8 @@ def write_extract(folder: Path, **tables: list[tuple]) -> Path:
     for name, rows in tables.items():
         header = COLUMNS[name]
         n = header.count(",") + 1
-        lines = [header] + [",".join("" if x is None else str(x) for x in (*r, *[""] * (n - len(r))))
-                            for r in rows]
+        pad = [(*r, *[""] * (n - len(r))) for r in rows]
+        lines = [header] + [",".join("" if x is None else str(x) for x in r) for r in pad]
         (folder / f"{name}.csv").write_text("\n".join(lines) + "\n")
     return folder
 
@@ -109,7 +109,8 @@ def test_entry_window_ends_and_first_record_in_window(tmp_path):
         (2, "2021-12-31", "RXB1"),  # on its last day: in
         (3, "2017-12-31", "RXA1"),  # a day before: never initiated
         (4, "2022-01-01", "RXA1"),  # a day after: never initiated
-        (5, "2017-12-31", "RXA1"), (5, "2018-03-01", "RXA2"),  # time zero 2018-03-01, washout day -60
+        # time zero 2018-03-01 (the first record inside), so the earlier one is washout day -60
+        (5, "2017-12-31", "RXA1"), (5, "2018-03-01", "RXA2"),
     ])
     assert ids(res) == [1, 2]
     assert str(row(res, 1).time_zero.date()) == "2018-01-01" and row(res, 1).arm == "arm_a"
@@ -121,8 +122,8 @@ def test_entry_window_ends_and_first_record_in_window(tmp_path):
 
 def test_person_is_tested_once_at_first_record(tmp_path):
     # born 1978-06-15: 39 at the first record 2018-06-01, 40 at the second 2019-06-20; not retried
-    res = run(tmp_path, persons=[(1, "1978-06-15")], disp=[(1, T0, "RXA1"), (1, "2019-06-20", "RXA1")],
-              proto={"eligibility": {"age": {"min": 40}}})
+    res = run(tmp_path, persons=[(1, "1978-06-15")],
+              disp=[(1, T0, "RXA1"), (1, "2019-06-20", "RXA1")], proto={"eligibility": {"age": {"min": 40}}})
     assert ids(res) == [] and excluded(res, "age") == 1
 
 
@@ -337,7 +338,8 @@ def test_measured_change_from_baseline_and_complete_case(tmp_path):
             (2, "2018-04-01", "LAB7", 8.0), (2, "2019-06-01", "LAB7", 7.0),  # baseline day -61
             (3, "2018-05-01", "LAB7", 8.0)]  # no outcome record
     res = run(tmp_path, persons=[1, 2, 3], disp=[(i, T0, "RXA1") for i in range(1, 4)],
-              meas=meas + [(i, d, "LAB7", 1) for i in (901, 902) for d in ("2018-05-01", "2019-06-01")],
+              meas=meas + [(i, d, "LAB7", 1) for i in (901, 902)
+                           for d in ("2018-05-01", "2019-06-01")],
               proto=proto)
     assert ids(res) == [1]
     assert row(res, 1)["value__lab"] == pytest.approx(-1.5)

@@ -75,7 +75,8 @@ def scenarios(draw):
         for _ in range(draw(st.integers(0, 2))):
             s = t + draw(st.integers(-500, 200))
             cov.append((pid, day(s).isoformat(), day(s + draw(st.integers(0, 400))).isoformat()))
-        disp.append((pid, day(t).isoformat(), draw(st.sampled_from(["RXA1", "RXB1", "RXA", "RXB1"]))))
+        first = draw(st.sampled_from(["RXA1", "RXB1", "RXA", "RXB1"]))
+        disp.append((pid, day(t).isoformat(), first))
         for _ in range(draw(st.integers(0, 2))):
             disp.append((pid, day(t + draw(st.sampled_from([0, 0, 1, -1, -30, -31, -90, -91, 40])))
                          .isoformat(), draw(st.sampled_from(DISP_CODES))))
@@ -86,8 +87,8 @@ def scenarios(draw):
             diag.append((pid, day(t + draw(near)).isoformat(), draw(st.sampled_from(DIAG_CODES)),
                          draw(st.sampled_from(["inpatient", "outpatient"]))))
         for _ in range(draw(st.integers(0, 3))):
-            meas.append((pid, day(t + draw(offsets(-110, 40, [-101, -100, -1, 0, 0, 0, 10, 20, 20, 30, 31])))
-                         .isoformat(), "LAB7",
+            k = t + draw(offsets(-110, 40, [-101, -100, -1, 0, 0, 0, 10, 20, 20, 30, 31]))
+            meas.append((pid, day(k).isoformat(), "LAB7",
                          draw(st.integers(1, 4))))
         if draw(st.booleans()):  # two values on one day: the tie rules of last and nearest
             k = t + draw(st.sampled_from([-100, -1, 0, 20]))
@@ -98,7 +99,8 @@ def scenarios(draw):
     if draw(st.integers(0, 6)):  # usually two anchors who pass every step, one per arm
         for pid, code in ((n + 1, "RXA1"), (n + 2, "RXB1")):
             t0 = day(entry[0])
-            persons.append((pid, t0.replace(year=t0.year - 58, day=min(t0.day, 28)).isoformat(), "F"))
+            birth = t0.replace(year=t0.year - 58, day=min(t0.day, 28))
+            persons.append((pid, birth.isoformat(), "F"))
             cov.append((pid, day(entry[0] - 400).isoformat(), day(900).isoformat()))
             disp.append((pid, t0.isoformat(), code))
             diag.append((pid, day(entry[0] + req).isoformat(), "DM2", "outpatient"))
@@ -113,7 +115,8 @@ def protocol_dict(par) -> dict:
                      "b": {"source": "dispensings", "codes": ["RXB1"], "match": "exact"},
                      "t2d": {"source": "diagnoses", "codes": ["DM2"]},
                      "mi": {"source": "diagnoses", "codes": ["MI1"]},
-                     "hf": {"source": "diagnoses", "codes": ["HF5"], "where": {"setting": "inpatient"}},
+                     "hf": {"source": "diagnoses", "codes": ["HF5"],
+                            "where": {"setting": "inpatient"}},
                      "lab": {"source": "measurements", "codes": ["LAB7"]}},
         "eligibility": {"entry": {"start": day(par["entry"][0]).isoformat(),
                                   "end": day(par["entry"][1]).isoformat()},
@@ -129,11 +132,14 @@ def protocol_dict(par) -> dict:
         "outcomes": {"primary": "hf", "competing": ["death"],
                      "secondary": [{"measure": "lab", "at_day": 20, "tolerance_days": 10}]},
         "covariates": [{"name": "age", "builtin": "age"},
-                       {"name": "prior_mi", "concept": "mi", "window": [-365, -1], "summary": "any"},
-                       {"name": "n_dx", "source": "diagnoses", "window": [-100, 0], "summary": "count"},
+                       {"name": "prior_mi", "concept": "mi", "window": [-365, -1],
+                        "summary": "any"},
+                       {"name": "n_dx", "source": "diagnoses", "window": [-100, 0],
+                        "summary": "count"},
                        {"name": "n_codes", "source": "diagnoses", "window": [-100, 0],
                         "summary": "distinct_codes"},
-                       {"name": "lab_last", "concept": "lab", "window": [-100, 0], "summary": "last"}],
+                       {"name": "lab_last", "concept": "lab", "window": [-100, 0],
+                        "summary": "last"}],
         "analysis": {"horizons_days": [30]},
     }
 
@@ -185,7 +191,8 @@ def reference(data, par) -> dict[int, dict]:
     ev = {}
     for k in ("dispensings", "diagnoses", "measurements"):
         t = tab[k]
-        ok = [birth[p] <= d and (p not in death or d <= death[p]) for p, d in zip(t.person_id, t.date, strict=True)]
+        ok = [birth[p] <= d and (p not in death or d <= death[p])
+              for p, d in zip(t.person_id, t.date, strict=True)]
         ev[k] = t[pd.Series(ok, index=t.index, dtype=bool)]
     es, ee = day(par["entry"][0]), day(par["entry"][1])
     out = {}
@@ -206,7 +213,8 @@ def reference(data, par) -> dict[int, dict]:
             return (x - t0).days
 
         dx = ev["diagnoses"][ev["diagnoses"].person_id == pid].assign(k=lambda f: f.date.map(k_of))
-        ms = ev["measurements"][ev["measurements"].person_id == pid].assign(k=lambda f: f.date.map(k_of))
+        ms = ev["measurements"][ev["measurements"].person_id == pid]
+        ms = ms.assign(k=lambda f: f.date.map(k_of))
         age = _age(birth[pid], t0)
         periods = _merged(list(zip(*[tab["coverage"][tab["coverage"].person_id == pid][c]
                                      for c in ("start_date", "end_date")], strict=True)))

@@ -107,7 +107,8 @@ def test_kinds(tmp_path):
 
 
 def test_numeric_attribute_binary_kind_and_median(tmp_path):
-    persons = [(1, "1960-01-01", "F", "1"), (2, "1960-01-01", "F", None), (3, "1960-01-01", "F", "0")]
+    persons = [(1, "1960-01-01", "F", "1"), (2, "1960-01-01", "F", None),
+               (3, "1960-01-01", "F", "0")]
     covs = [{"name": "region", "attribute": "region"}]
     res, c = cohort(tmp_path, covs=covs, persons=persons)
     # known values 1, 0 and the fillers' missing ones: median of (1, 0) = 0.5

@@ -7,8 +7,6 @@ rule build_cohort:
         cohort=result("cohort.parquet"),
         attrition=result("attrition.csv"),
     params:
-        extract=EXTRACT,
-        protocol=PROTOCOL,
         duckdb=DUCKDB,
     log:
         logfile("build_cohort"),

@@ -8,7 +8,6 @@ rule estimate_effects:
         curves=result("curves.csv"),
         bootstrap=result("bootstrap.json"),
     params:
-        protocol=PROTOCOL,
         workers=WORKERS,
     threads: WORKERS
     log:

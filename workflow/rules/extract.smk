@@ -5,8 +5,6 @@ rule check_extract:
     output:
         check=result("extract_check.json"),
     params:
-        extract=EXTRACT,
-        protocol=PROTOCOL,
         duckdb=DUCKDB,
     log:
         logfile("check_extract"),

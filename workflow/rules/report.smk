@@ -14,8 +14,6 @@ rule render_report:
         report=result("report.html"),
         manifest=result("manifest.json"),
     params:
-        protocol=PROTOCOL,
-        results=RESULTS,
         reports=REPORTS,
         design=False,
     log:
@@ -26,12 +24,12 @@ rule render_report:
 
 rule archive_report:
     input:
+        check=result("extract_check.json"),
         report=result("report.html"),
         manifest=result("manifest.json"),
     output:
         archived=result("archive.json"),
     params:
-        results=RESULTS,
         reports=REPORTS,
     log:
         logfile("archive_report"),
@@ -52,8 +50,6 @@ rule render_design:
         report=result("design/report.html"),
         manifest=result("design/manifest.json"),
     params:
-        protocol=PROTOCOL,
-        results=RESULTS,
         reports=REPORTS,
         design=True,
     log:
@@ -64,12 +60,12 @@ rule render_design:
 
 rule archive_design:
     input:
+        check=result("extract_check.json"),
         report=result("design/report.html"),
         manifest=result("design/manifest.json"),
     output:
         archived=result("design_archive.json"),
     params:
-        results=RESULTS,
         reports=REPORTS,
     log:
         logfile("archive_design"),

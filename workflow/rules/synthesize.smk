@@ -6,7 +6,6 @@ if IS_SYNTHETIC:
             tables=EXTRACT_FILES,
             truth=f"{EXTRACT}/truth.json",
         params:
-            out=EXTRACT,
             persons=config.get("synthetic", {}).get("persons", 20000),
             seed=config.get("synthetic", {}).get("seed", 20261201),
         log:

@@ -5,8 +5,6 @@ rule fit_weights:
     output:
         weights=result("weights.parquet"),
         positivity=result("positivity.json"),
-    params:
-        protocol=PROTOCOL,
     log:
         logfile("fit_weights"),
     script:
@@ -20,8 +18,6 @@ rule check_balance:
         protocol=PROTOCOL_FILES,
     output:
         balance=result("balance.csv"),
-    params:
-        protocol=PROTOCOL,
     log:
         logfile("check_balance"),
     script:
