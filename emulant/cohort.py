@@ -29,7 +29,6 @@ import pandas as pd
 from emulant import columns as C
 from emulant.covariates import (
     CohortError,
-    CovariateError,
     Planner,
     age_sql,
     concept_condition,
@@ -69,10 +68,7 @@ def _arm_records(ex: Extract, p: Protocol) -> str:
         if not ex.has(c.source):
             raise CohortError(f"strategies.arms.{arm.name}: concept '{c.name}' reads table "
                               f"'{c.source}', which the extract {ex.path} does not have")
-        try:
-            cond = concept_condition(c, "s", ex.columns[c.source], c.source)
-        except CovariateError as exc:
-            raise CohortError(str(exc)) from None
+        cond = concept_condition(c, "s", ex.columns[c.source], c.source)
         parts.append(f"SELECT s.person_id, s.date, {i} AS arm FROM {q(c.source)} s WHERE {cond}")
     return " UNION ALL ".join(parts)
 

@@ -123,7 +123,8 @@ def test_entry_window_ends_and_first_record_in_window(tmp_path):
 def test_person_is_tested_once_at_first_record(tmp_path):
     # born 1978-06-15: 39 at the first record 2018-06-01, 40 at the second 2019-06-20; not retried
     res = run(tmp_path, persons=[(1, "1978-06-15")],
-              disp=[(1, T0, "RXA1"), (1, "2019-06-20", "RXA1")], proto={"eligibility": {"age": {"min": 40}}})
+              disp=[(1, T0, "RXA1"), (1, "2019-06-20", "RXA1")],
+              proto={"eligibility": {"age": {"min": 40}}})
     assert ids(res) == [] and excluded(res, "age") == 1
 
 
