@@ -28,8 +28,8 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
+from emulant.design import is_zero_one
 from emulant.errors import EmulantError
-from emulant.propensity import _is01
 from emulant.weights import resolve_kinds, treated_indicator
 
 BALANCE_COLUMNS = ("covariate", "level", "estimand", "mean_treated", "mean_comparator",
@@ -85,9 +85,9 @@ def _items(cohort: pd.DataFrame, protocol: Any) -> list[tuple[str, str, str, np.
             raise BalanceError(f"cohort has no column for covariate '{name}'")
         s = cohort[name]
         kind = kinds[name]
-        if kind != "categorical" and not pd.api.types.is_numeric_dtype(s.dtype) and not _is01(s):
+        if kind != "categorical" and not pd.api.types.is_numeric_dtype(s.dtype) and not is_zero_one(s):
             kind = "categorical"
-        if kind == "binary" and not _is01(s):
+        if kind == "binary" and not is_zero_one(s):
             kind = "categorical" if s.nunique() <= 2 else "continuous"
         if kind == "categorical":
             v = s.astype(object).where(s.notna(), "missing")

@@ -336,8 +336,8 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
     """
     from emulant.bootstrap import attach_intervals, run_bootstrap
     from emulant.covariates import covariate_kinds
+    from emulant.design import DesignError, build_design
     from emulant.evalue import e_value_rows
-    from emulant.propensity import DesignError, build_design
     from emulant.weights import WeightsError
 
     check_cohort(cohort, protocol)

@@ -13,8 +13,9 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
+from emulant.design import build_design, is_zero_one
 from emulant.errors import EmulantError
-from emulant.propensity import PropensityModel, _is01, build_design
+from emulant.propensity import PropensityModel
 
 ESTIMANDS = ("ATE", "ATT", "ATO")
 
@@ -136,7 +137,7 @@ def resolve_kinds(protocol: Any, cohort: pd.DataFrame) -> dict[str, str]:
             out[cov.name] = cov.kind
         elif cov.name in cohort.columns and not pd.api.types.is_numeric_dtype(cohort[cov.name]):
             out[cov.name] = "categorical"
-        elif cov.name in cohort.columns and _is01(cohort[cov.name]):
+        elif cov.name in cohort.columns and is_zero_one(cohort[cov.name]):
             out[cov.name] = "binary"
         else:
             out[cov.name] = "continuous"
