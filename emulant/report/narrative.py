@@ -11,6 +11,7 @@ import pandas as pd
 from emulant.protocol import MeasuredOutcome, Protocol, outcome_name
 from emulant.report import disclosure as dc
 from emulant.report import fmt
+from emulant.tte import censoring_assumption
 
 COMPONENTS = (
     ("eligibility", "Eligibility criteria"),
@@ -188,9 +189,7 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
     elif cens:
         censev = [f"End of follow-up by reason and arm (primary outcome {cens['outcome']}) in the "
                   "table below; coverage end is the censoring that could be informative.",
-                  "Censoring weights: " + ("used." if p.analysis.censoring_weights else
-                                           "not used (censoring assumed non-informative given "
-                                           "arm).")]
+                  censoring_assumption(p)]
     else:
         censev = ["End-of-follow-up reasons: not produced in this run."]
     a = p.analysis
@@ -217,8 +216,9 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
                       "treatments, doubtful for infectious outcomes or shared care."],
          "threat": False},
         {"id": "censoring", "name": "Non-informative censoring",
-         "statement": "Leaving follow-up (end of coverage) is unrelated to the outcome given arm "
-                      "and, with censoring weights, the covariates.", "evidence": censev,
+         "statement": "Leaving follow-up (end of coverage or of the data) is unrelated to the "
+                      "outcome given arm and, with censoring weights, the covariates.",
+         "evidence": censev,
          "threat": False},
         {"id": "specification", "name": "Correct model specification",
          "statement": "The propensity and outcome models describe the data well enough.",

@@ -14,6 +14,7 @@ from emulant import columns as col
 from emulant.protocol import Protocol, outcome_name
 from emulant.report import disclosure as dc
 from emulant.report import fmt
+from emulant.tte import hazard_ratio_label
 
 METHOD_ORDER = ("unadjusted", "ipw", "standardization", "doubly_robust")
 MEASURE_ORDER = ("risk", "risk_difference", "risk_ratio", "hazard_ratio", "mean",
@@ -76,14 +77,14 @@ def estimates(est: pd.DataFrame, protocol: Protocol) -> list[dict]:
                 _q=[_order(MEASURE_ORDER, x) for x in ge["measure"]],
                 _h=pd.to_numeric(ge["horizon_day"], errors="coerce").fillna(1e9),
             ).sort_values(["_m", "_h", "_q", "arm"], kind="stable")
-            rows = [_row(r, m, hide_crude) for r in ge.itertuples(index=False)]
+            rows = [_row(r, m, hide_crude, protocol) for r in ge.itertuples(index=False)]
             groups.append({"estimand": e or "unadjusted (no weighting)", "rows": rows})
         out.append({"outcome": o, "role": protocol.outcomes.role(o).replace("_", " "),
                     "groups": groups, "crude_hidden": hide_crude})
     return out
 
 
-def _row(r: Any, m: int, hide_crude: bool) -> dict:
+def _row(r: Any, m: int, hide_crude: bool, protocol: Protocol) -> dict:
     arms = str(r.arm) if fmt.missing(r.comparator) else f"{r.arm} vs {r.comparator}"
     n, ev = _num(r.n), _num(r.events)
     ev_hidden = (not math.isnan(ev) and not math.isnan(n) and dc.suppress_binary(ev, n, m)
@@ -97,7 +98,7 @@ def _row(r: Any, m: int, hide_crude: bool) -> dict:
         val, interval = fmt.sig(r.estimate, digits), fmt.ci(r.ci_low, r.ci_high, digits)
     return {
         "method": METHOD_LABEL.get(r.method, str(r.method)),
-        "measure": MEASURE_LABEL.get(r.measure, str(r.measure)),
+        "measure": measure_label(r.measure, protocol),
         "horizon": "" if fmt.missing(r.horizon_day) else fmt.integer(r.horizon_day),
         "arms": arms,
         "estimate": "not shown" if hidden else val,
@@ -105,6 +106,13 @@ def _row(r: Any, m: int, hide_crude: bool) -> dict:
         "n": dc.show_count(n, m) if not math.isnan(n) else "",
         "events": dc.show_count(ev, m, ev_hidden) if not math.isnan(ev) else "",
     }
+
+
+def measure_label(measure: str, protocol: Protocol) -> str:
+    """The measure in words; a hazard ratio says whether it is cause-specific."""
+    if measure == "hazard_ratio":
+        return hazard_ratio_label(protocol)
+    return MEASURE_LABEL.get(measure, str(measure))
 
 
 def negative_controls(est: pd.DataFrame | None, protocol: Protocol) -> list[dict]:
@@ -128,7 +136,7 @@ def negative_controls(est: pd.DataFrame | None, protocol: Protocol) -> list[dict
             holds = None if math.isnan(lo) or math.isnan(hi) else bool(lo <= null <= hi)
             out.append({"outcome": o, "estimand": fmt.text(r.estimand) or "unadjusted",
                         "method": METHOD_LABEL.get(r.method, str(r.method)),
-                        "measure": MEASURE_LABEL[r.measure],
+                        "measure": measure_label(r.measure, protocol),
                         "horizon": "" if fmt.missing(r.horizon_day) else fmt.integer(r.horizon_day),
                         "estimate": fmt.sig(r.estimate), "ci": fmt.ci(r.ci_low, r.ci_high),
                         "includes_null": holds})
