@@ -1,4 +1,4 @@
-"""The propensity model and its design matrix.
+"""The propensity model: a logistic regression for the probability of the treated arm.
 
 The design matrix lives in :mod:`emulant.design` (re-exported here: ``build_design``, ``Design``).
 :class:`PropensityModel` is a logistic regression for :math:`e(x) = P(A = 1 \\mid X = x)` fitted by
