@@ -283,4 +283,4 @@ def open_extract(path: str | Path, protocol: Protocol | None = None,
 
 
 # the check builds on the helpers above; importing it last keeps `emulant.extract.check_extract`
-from emulant.extract_check import check_extract  # noqa: E402, F401
+from emulant.extract_check import check_extract, sha256_file  # noqa: E402, F401

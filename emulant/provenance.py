@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import datetime as dt
 import difflib
-import hashlib
 import json
 import platform
 import shutil
@@ -21,6 +20,7 @@ from typing import Any
 import pandas as pd
 
 from emulant import __version__
+from emulant.extract import sha256_file
 from emulant.protocol import Protocol
 
 PACKAGES = ("emulant", "snakemake", "duckdb", "pandas", "pyarrow", "numpy", "scipy", "statsmodels",
@@ -30,14 +30,6 @@ RESULT_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weight
 ARCHIVED = ("report.html", "manifest.json", "estimates.csv", "curves.csv", "attrition.csv",
             "balance.csv", "positivity.json", "bootstrap.json", "extract_check.json")
 ESTIMATE_KEY = ["outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm", "comparator"]
-
-
-def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        while block := f.read(chunk):
-            h.update(block)
-    return h.hexdigest()
 
 
 def package_versions() -> dict[str, str]:

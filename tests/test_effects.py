@@ -13,6 +13,7 @@
 
 from __future__ import annotations
 
+import nhefs_data
 import numpy as np
 import pandas as pd
 import pytest
@@ -92,8 +93,7 @@ def point(cohort, protocol):
 
 @pytest.fixture(scope="module")
 def nhefs_complete():
-    d = causaldata.nhefs.load_pandas().data
-    d = d[d["wt82_71"].notna()].reset_index(drop=True)
+    d = nhefs_data.load(complete=True)
     covs = {n: (d[n].astype(int) if k == "categorical" else d[n]).to_numpy()
             for n, k in NHEFS_COVARIATES}
     cohort = cohort_frame(d["qsmk"].to_numpy(), covs, d["wt82_71"].to_numpy())

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import datetime as dt
 
+import nhefs_data
 import numpy as np
 import pandas as pd
 import pytest
@@ -69,10 +70,7 @@ analysis:
 
 
 def nhefs() -> pd.DataFrame:
-    d = causaldata.nhefs.load_pandas().data.copy()
-    for c in ("sex", "race", *CATEGORICAL):
-        d[c] = d[c].astype(int)
-    return d
+    return nhefs_data.load()
 
 
 def birth_date(age: int) -> dt.date:

@@ -16,6 +16,7 @@ The dataset is rewritten as a registry-style extract: one invented dispensing co
 
 from __future__ import annotations
 
+import nhefs_data
 import numpy as np
 import pandas as pd
 import pytest
@@ -36,9 +37,7 @@ CONTINUOUS = ("age71", "smokeintensity", "smokeyrs", "wt71")
 
 
 def _write_extract(folder):
-    d = causaldata.nhefs.load_pandas().data.copy()
-    for c in ("sex", *CATEGORICAL):
-        d[c] = d[c].astype(int)  # stored as strings (FIELD_NOTES)
+    d = nhefs_data.load()
     pid = d["seqn"].astype(int)
     persons = pd.DataFrame({
         "person_id": pid,

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import warnings
 
+import nhefs_data
 import numpy as np
 import pandas as pd
 import pytest
@@ -18,23 +19,14 @@ from emulant.propensity import (
 )
 
 # The model of Hernán & Robins, "Causal Inference: What If", chapter 12 (Program 12.2).
-NHEFS_COVARIATES = ["sex", "race", "age", "education", "smokeintensity", "smokeyrs", "exercise",
-                    "active", "wt71"]
-NHEFS_KINDS = {"sex": "binary", "race": "binary", "age": "continuous",
-               "education": "categorical", "smokeintensity": "continuous",
-               "smokeyrs": "continuous", "exercise": "categorical", "active": "categorical",
-               "wt71": "continuous"}
+NHEFS_COVARIATES, NHEFS_KINDS = nhefs_data.BOOK_COVARIATES, nhefs_data.BOOK_KINDS
 
 
 @pytest.fixture(scope="module")
 def nhefs() -> pd.DataFrame:
     """NHEFS from the causaldata package: the 1,566 persons with wt82_71 (FIELD_NOTES: the
     categoricals are stored as strings, cast to int)."""
-    causaldata = pytest.importorskip("causaldata")
-    d = causaldata.nhefs.load_pandas().data
-    d = d[d["wt82_71"].notna()].reset_index(drop=True)
-    for c in ["sex", "race", "education", "exercise", "active"]:
-        d[c] = d[c].astype(int)
+    d = nhefs_data.load(complete=True)
     assert len(d) == 1566
     return d
 

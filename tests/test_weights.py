@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import nhefs_data
 import numpy as np
 import pandas as pd
 import pytest
@@ -18,12 +19,7 @@ from emulant.weights import (
     weighted_quantile,
 )
 
-NHEFS_COVARIATES = ["sex", "race", "age", "education", "smokeintensity", "smokeyrs", "exercise",
-                    "active", "wt71"]
-NHEFS_KINDS = {"sex": "binary", "race": "binary", "age": "continuous",
-               "education": "categorical", "smokeintensity": "continuous",
-               "smokeyrs": "continuous", "exercise": "categorical", "active": "categorical",
-               "wt71": "continuous"}
+NHEFS_COVARIATES, NHEFS_KINDS = nhefs_data.BOOK_COVARIATES, nhefs_data.BOOK_KINDS
 
 
 @pytest.fixture(scope="module")
@@ -31,11 +27,7 @@ def nhefs_fit():
     """NHEFS (causaldata package), the 1,566 persons with wt82_71, and the propensity model of
     Hernán & Robins, "Causal Inference: What If", chapter 12, Program 12.2 (age, smoking intensity,
     smoking years and weight as quadratics; education, exercise, active as categoricals)."""
-    causaldata = pytest.importorskip("causaldata")
-    d = causaldata.nhefs.load_pandas().data
-    d = d[d["wt82_71"].notna()].reset_index(drop=True)
-    for c in ["sex", "race", "education", "exercise", "active"]:
-        d[c] = d[c].astype(int)  # stored as strings (FIELD_NOTES)
+    d = nhefs_data.load(complete=True)
     design = build_design(d, NHEFS_COVARIATES, NHEFS_KINDS, continuous="quadratic")
     X = design.transform(d)
     a = d["qsmk"].to_numpy(float)
