@@ -13,12 +13,15 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
 
+# ARGS passes anything on to snakemake, e.g. make demo ARGS="--config extract=PATH protocol=FILE"
+ARGS    ?=
+
 demo: $(STAMP)
-	$(BIN)/snakemake --cores $(CORES) --scheduler greedy
+	$(BIN)/snakemake --cores $(CORES) --scheduler greedy $(ARGS)
 	@$(BIN)/python -m emulant.cli where --config config/config.yaml
 
 design: $(STAMP)
-	$(BIN)/snakemake design --cores $(CORES) --scheduler greedy
+	$(BIN)/snakemake design --cores $(CORES) --scheduler greedy $(ARGS)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest

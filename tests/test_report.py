@@ -412,31 +412,3 @@ def test_unreadable_results_file_names_it(tmp_path):
 
 
 ROOT = Path(__file__).resolve().parents[1]
-
-
-def _pipeline_runs():
-    """(protocol, results folder) of a real pipeline run in this working tree, if any."""
-    out = []
-    for path in [*sorted((ROOT / "config" / "protocols").glob("*.yaml")),
-                 ROOT / "synthetic_cohort" / "demo_protocol.yaml"]:
-        if not path.is_file():
-            continue
-        try:
-            p = load_protocol(path)
-        except Exception:  # noqa: BLE001 - a protocol being edited is not this test's business
-            continue
-        d = ROOT / "results" / p.study.id
-        if (d / "attrition.csv").is_file():
-            out.append((p, d))
-    return out
-
-
-@pytest.mark.skipif(not _pipeline_runs(), reason="no pipeline results in results/ yet")
-@pytest.mark.parametrize("design", [False, True])
-def test_renders_real_pipeline_results(tmp_path, design):
-    for protocol, d in _pipeline_runs():
-        html = render_report(d, protocol, tmp_path / "r.html", design=design).read_text()
-        page = _parse(html)
-        assert {"question", "target-trial", "assumptions", "attrition"} <= page.ids
-        assert all(link.startswith("#") for link in page.links)
-        assert ("results" in page.ids) is (not design)

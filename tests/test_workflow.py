@@ -10,6 +10,7 @@ its manual (rerun triggers: code, input, mtime, params); the statistics are chec
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -62,6 +63,12 @@ def test_first_run_writes_every_result(workdir):
     assert {"ATE", "ATT"} <= set(est.estimand.dropna())
     archived = json.loads((res / "archive.json").read_text())
     assert Path(workdir / archived["report"]).is_file() or Path(archived["report"]).is_file()
+    html = (res / "report.html").read_text()
+    for section in ("question", "warnings", "target-trial", "provenance", "attrition", "baseline",
+                    "positivity", "results", "assumptions", "manifest"):
+        assert f'id="{section}"' in html, section
+    links = re.findall(r'(?:src|href)="([^"]*)"', html)
+    assert all(link.startswith("#") for link in links) and "<script" not in html
 
 
 def test_unchanged_rerun_has_nothing_to_do(workdir):
