@@ -8,46 +8,41 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from emulant.errors import EmulantError
 from emulant.extract import find_tables
-from emulant.protocol import ProtocolError, load_protocol
-
-SYNTHETIC_TABLES = ("persons", "coverage", "dispensings", "diagnoses", "measurements", "deaths")
-
-
-class WorkflowConfigError(EmulantError):
-    """A run-time setting that cannot be used; the message names the key and the path."""
+from emulant.protocol import Protocol, ProtocolError, load_protocol
 
 
 def _fail(msg: str) -> None:
+    """Stop the workflow at parse time with the message alone (exit code 2, no traceback)."""
     print(f"emulant: {msg}", file=sys.stderr)
-    raise WorkflowConfigError(msg)
+    raise SystemExit(2)
 
 
-def study_id(protocol_path: str) -> str:
-    """The protocol's ``study.id``; every protocol problem is listed and the run stops."""
+def protocol(protocol_path: str) -> Protocol:
+    """The parsed protocol; every protocol problem is listed and the run stops."""
     try:
-        return load_protocol(protocol_path).study.id
+        return load_protocol(protocol_path)
     except ProtocolError as exc:
         _fail(str(exc))
     raise AssertionError  # unreachable
 
 
-def protocol_files(protocol_path: str) -> list[str]:
+def protocol_files(protocol: Protocol) -> list[str]:
     """The protocol file and every code-list file it names (their changes rerun the workflow)."""
-    p = load_protocol(protocol_path)
-    files = [str(protocol_path)]
-    for c in p.concepts.values():
+    files = [str(protocol.path)]
+    for c in protocol.concepts.values():
         if c.codes_file:
             f = Path(c.codes_file)
-            files.append(str(f if f.is_absolute() else Path(protocol_path).parent / f))
+            files.append(str(f if f.is_absolute() else protocol.base_dir / f))
     return list(dict.fromkeys(files))
 
 
 def extract_files(extract_dir: str, synthetic: bool) -> list[str]:
     """The extract's table files; for the demo extract, the files the generator will write."""
     if synthetic:
-        return [f"{extract_dir}/{t}.parquet" for t in SYNTHETIC_TABLES]
+        from synthetic_cohort.generate import TABLES
+
+        return [f"{extract_dir}/{t}.parquet" for t in TABLES]
     d = Path(extract_dir)
     if not d.is_dir():
         _fail(f"config key 'extract': folder {extract_dir} does not exist")

@@ -7,11 +7,12 @@ SYNTHETIC_DEFAULT = "resources/synthetic"
 EXTRACT = config["extract"]
 PROTOCOL = config["protocol"]
 IS_SYNTHETIC = Path(EXTRACT) == Path(SYNTHETIC_DEFAULT)
-STUDY = emulant_paths.study_id(PROTOCOL)
+PROTOCOL_PARSED = emulant_paths.protocol(PROTOCOL)  # parsed once here; each job parses its own copy
+STUDY = PROTOCOL_PARSED.study.id
 RESULTS = f"{config.get('results', 'results')}/{STUDY}"
 REPORTS = f"{config.get('reports', 'reports')}/{STUDY}"
 EXTRACT_FILES = emulant_paths.extract_files(EXTRACT, synthetic=IS_SYNTHETIC)
-PROTOCOL_FILES = emulant_paths.protocol_files(PROTOCOL)
+PROTOCOL_FILES = emulant_paths.protocol_files(PROTOCOL_PARSED)
 DUCKDB = config.get("duckdb", {})
 WORKERS = config.get("workers", 2)
 
