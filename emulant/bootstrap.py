@@ -32,7 +32,7 @@ from typing import Any
 
 import numpy as np
 
-from emulant.errors import EmulantError
+from emulant.errors import EmulantError, NonConvergenceWarning
 
 ROW_KEY = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
            "comparator")
@@ -127,12 +127,15 @@ def _replicate(r: int) -> tuple[int, np.ndarray | None, np.ndarray | None, str |
     s = _STATE
     freq = replicate_freq(len(s["cohort"]), s["seed"], r)
     try:
-        with np.errstate(all="ignore"), warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # a replicate's fit warnings: the point estimate's count
+        with np.errstate(all="ignore"), warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")  # kept to look for non-convergence, never shown
             sample = build_sample(s["cohort"], s["protocol"], s["design"], s["X"], freq)
             if sample.warnings:
                 return r, None, None, sample.warnings[0]
             rows, curves = estimate_sample(sample)
+        failed = [w for w in caught if issubclass(w.category, NonConvergenceWarning)]
+        if failed:
+            return r, None, None, str(failed[0].message)
     except SampleError as exc:
         return r, None, None, exc.reason
     except Exception as exc:  # noqa: BLE001 - any failure of a replicate is counted, not raised

@@ -8,3 +8,8 @@ exit with code 2, never with a traceback.
 
 class EmulantError(Exception):
     """An input problem, reported to the user as its message alone."""
+
+
+class NonConvergenceWarning(UserWarning):
+    """A model fit stopped before converging. The point estimate logs it; a bootstrap replicate
+    in which it is raised counts as failed (never as a silently wrong value)."""

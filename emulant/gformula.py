@@ -17,10 +17,12 @@ so no long table is materialised; :func:`person_period` builds the long table ex
 
 from __future__ import annotations
 
+import warnings
 from contextlib import nullcontext
 
 import numpy as np
 
+from emulant.errors import NonConvergenceWarning
 from emulant.survival import COMPETING, OUTCOME, SurvivalError
 
 try:  # installed with scikit-learn
@@ -288,6 +290,11 @@ def hazard_models(time, status, a, X, freq, period_days: int, n_periods: int,
                                                    s == COMPETING, freq)
     if censoring:
         models["censoring"] = PooledLogistic().fit(B, X, a, last - (s != 0), s == 0, freq)
+    for name, m in models.items():
+        if not m.converged_:
+            warnings.warn(NonConvergenceWarning(
+                f"the pooled logistic model of the {name} hazard did not converge"),
+                stacklevel=2)
     return models
 
 

@@ -119,3 +119,35 @@ def test_progress_callback_and_curve_intervals():
                          np.array([[0.1, 0.2], [0.2, 0.3], [0.3, 0.1]]))
     _, out = B.attach_intervals([], curves, run, "percentile")
     assert out[0]["ci_low"] == pytest.approx(0.105) and out[1]["ci_high"] == pytest.approx(0.295)
+
+
+def test_a_hazard_model_that_does_not_converge_fails_its_replicate(tmp_path, monkeypatch):
+    # A pooled logistic hazard fit that stops before converging must never give a replicate's
+    # value silently: the point estimate warns, each replicate counts as failed, and with every
+    # replicate failed the run stops (the 5% rule). Forced here by marking every fit unconverged.
+    import dataclasses
+
+    from emulant import gformula
+    from emulant.cohort import build_cohort
+    from emulant.errors import NonConvergenceWarning
+    from emulant.extract import open_extract
+    from emulant.protocol import load_protocol
+
+    generate = pytest.importorskip("synthetic_cohort.generate")
+    generate.write_synthetic(tmp_path, 1500, 2, "parquet")
+    protocol = load_protocol(tmp_path / "protocol.yaml")
+    outcomes = dataclasses.replace(protocol.outcomes, secondary=(), negative_controls=())
+    boot = dataclasses.replace(protocol.analysis.bootstrap, replicates=4)
+    protocol = dataclasses.replace(protocol, outcomes=outcomes,
+                                   analysis=dataclasses.replace(protocol.analysis, bootstrap=boot))
+    cohort = build_cohort(open_extract(tmp_path, protocol), protocol).cohort
+    fit = gformula.PooledLogistic.fit
+
+    def unconverged(self, *args, **kwargs):
+        out = fit(self, *args, **kwargs)
+        out.converged_ = False
+        return out
+
+    monkeypatch.setattr(gformula.PooledLogistic, "fit", unconverged)
+    with pytest.warns(NonConvergenceWarning), pytest.raises(B.BootstrapError, match="did not converge"):
+        estimate_effects(cohort, protocol, workers=1, progress=False)
