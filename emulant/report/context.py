@@ -37,8 +37,9 @@ SECTIONS = (
 DESIGN_OMITS = {"results", "since-previous"}
 
 
-def comparison_context(cmp: dict, min_cell: int) -> dict:
+def comparison_context(cmp: dict, protocol: Protocol) -> dict:
     """The "since the previous run" section: changed files, attrition then and now, shifts."""
+    min_cell = protocol.report.min_cell
     att = []
     for r in cmp.get("attrition") or []:
         att.append({"step": fmt.text(r.get("step")),
@@ -50,8 +51,7 @@ def comparison_context(cmp: dict, min_cell: int) -> dict:
         est.append({"outcome": fmt.text(r.get("outcome")),
                     "estimand": fmt.text(r.get("estimand")) or "unadjusted",
                     "method": results.METHOD_LABEL.get(r.get("method"), fmt.text(r.get("method"))),
-                    "measure": results.MEASURE_LABEL.get(r.get("measure"),
-                                                         fmt.text(r.get("measure"))),
+                    "measure": results.measure_label(fmt.text(r.get("measure")), protocol),
                     "horizon": fmt.integer(r.get("horizon_day")), "arms": arms,
                     "previous": fmt.sig(r.get("previous")), "current": fmt.sig(r.get("current")),
                     "shift": fmt.sig(r.get("shift")), "shift_se": fmt.num(r.get("shift_in_se"), 2)})
@@ -159,7 +159,7 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         ctx["censoring"] = results.censoring(raw["cohort"], p)
         ctx["bootstrap"] = results.bootstrap(raw["bootstrap"]) if raw["bootstrap"] else None
         events = results.events_by_arm(raw["cohort"], est, p)
-        ctx["comparison"] = comparison_context(comparison, m) if comparison else None
+        ctx["comparison"] = comparison_context(comparison, p) if comparison else None
     else:
         ctx.update(estimates=None, negative_controls=[], curves=None, censoring=None,
                    bootstrap=None, comparison=None)
