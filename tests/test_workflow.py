@@ -67,6 +67,8 @@ def test_first_run_writes_every_result(workdir):
     for section in ("question", "warnings", "target-trial", "provenance", "attrition", "baseline",
                     "positivity", "results", "assumptions", "manifest"):
         assert f'id="{section}"' in html, section
+    # the demo's measured outcome (missing: censor) states the assumption its missing values rest on
+    assert "missing at random given arm and the covariates" in html
     links = re.findall(r'(?:src|href)="([^"]*)"', html)
     assert all(link.startswith("#") for link in links) and "<script" not in html
 

@@ -157,11 +157,13 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
                 c["svg"] = figures.curves_figure(c["panels"], prefix=f"fig-curves{i}")
         ctx["curves"] = curves
         ctx["censoring"] = results.censoring(raw["cohort"], p)
+        ctx["measured_missing"] = results.measured_missing(raw["cohort"], p)
         ctx["bootstrap"] = results.bootstrap(raw["bootstrap"]) if raw["bootstrap"] else None
         events = results.events_by_arm(raw["cohort"], est, p)
         ctx["comparison"] = comparison_context(comparison, p) if comparison else None
     else:
         ctx.update(estimates=None, negative_controls=[], curves=None, censoring=None,
+                   measured_missing=[],
                    bootstrap=None, comparison=None)
 
     ctx["warnings"] = narrative.warnings(p, raw, events, design)

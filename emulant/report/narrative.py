@@ -153,6 +153,29 @@ def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design:
     return out
 
 
+def _missing_outcome(p: Protocol, mm: dict) -> dict:
+    """The assumption a measured outcome's missing values rest on, with the counts measured."""
+    window = f"day {mm['at_day']} ± {mm['tolerance']}"
+    if mm["missing"] == "complete_case":
+        statement = ("Persons without a measurement in the window leave the cohort (step "
+                     "outcome_measured). The estimate is unbiased for the eligible population only "
+                     "if being measured is unrelated to the outcome given arm and the covariates "
+                     "and the effect is the same among the measured and the unmeasured; "
+                     "otherwise it is the effect among the measured.")
+        how = "Complete cases: the unmeasured were excluded at the step outcome_measured."
+    else:
+        statement = ("Values missing in the window are missing at random given arm and the "
+                     "covariates: whether a person was measured does not depend on the value "
+                     "itself once these are accounted for.")
+        how = ("Inverse probability of being measured weights, from a logistic model of being "
+               "measured given arm and the covariates, in every adjusted method (the crude "
+               "comparison uses the measured alone).")
+    return {"id": f"missing-{mm['outcome']}", "name": f"Missing values of {mm['outcome']}",
+            "statement": statement,
+            "evidence": [f"Measured outcome {mm['outcome']} at {window}. {how}", *mm["arms"]],
+            "threat": False}
+
+
 def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
     """The identifying assumptions, each in words with this run's evidence for or against it."""
     thr = p.analysis.smd_threshold
@@ -220,6 +243,7 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
                       "outcome given arm and, with censoring weights, the covariates.",
          "evidence": censev,
          "threat": False},
+        *[_missing_outcome(p, mm) for mm in ctx.get("measured_missing") or []],
         {"id": "specification", "name": "Correct model specification",
          "statement": "The propensity and outcome models describe the data well enough.",
          "evidence": [f"Propensity: {a.propensity.model} regression, continuous covariates as "

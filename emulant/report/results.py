@@ -247,3 +247,23 @@ def bootstrap(b: dict) -> dict:
             "failed": fmt.integer(b.get("failed")), "seed": fmt.text(b.get("seed")),
             "interval": fmt.text(b.get("interval")), "workers": fmt.text(b.get("workers")),
             "failures": [str(f) for f in fails[:10]]}
+
+
+def measured_missing(cohort: pd.DataFrame | None, protocol: Protocol) -> list[dict]:
+    """For each measured outcome: how missing values are handled and, by arm, how many were
+    measured (counts under the disclosure rule)."""
+    out = []
+    m = protocol.report.min_cell
+    for o in protocol.outcomes.measured():
+        flag = col.measured(o.measure)
+        arms = []
+        if cohort is not None and flag in cohort:
+            for a in protocol.strategies.arm_names:
+                s = cohort.loc[cohort["arm"].astype(str) == a, flag]
+                k, n = int(s.sum()), int(len(s))
+                hide = dc.suppress_binary(k, n, m)
+                arms.append(f"{a}: {dc.show_count(k, m, hide)} of {dc.show_count(n, m)} measured"
+                            + (f" ({dc.show_percent(k, n, m, hide)})" if not hide else ""))
+        out.append({"outcome": o.measure, "missing": o.missing, "at_day": o.at_day,
+                    "tolerance": o.tolerance_days, "arms": arms})
+    return out
