@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from two_arm import two_arm_protocol
 
 from emulant import columns
 from emulant.balance import (
@@ -18,27 +19,17 @@ from emulant.balance import (
     smd,
     weighted_var,
 )
-from emulant.protocol import parse_protocol
 
 
 def _protocol(estimands=("ATE", "ATT")):
-    return parse_protocol({
-        "study": {"id": "balance-test"},
-        "concepts": {"drug_a": {"source": "dispensings", "codes": ["A1"]},
-                     "drug_b": {"source": "dispensings", "codes": ["B1"]},
-                     "event": {"source": "diagnoses", "codes": ["E1"]},
-                     "lab": {"source": "measurements", "codes": ["L1"]}},
-        "eligibility": {"entry": {"start": "2016-01-01", "end": "2020-12-31"}},
-        "strategies": {"arms": {"drug_a": {"initiate": "drug_a"},
-                                "drug_b": {"initiate": "drug_b"}}, "treated": "drug_a"},
-        "outcomes": {"primary": "event"},
-        "covariates": [{"name": "age", "builtin": "age"},
-                       {"name": "region", "attribute": "region", "kind": "categorical"},
-                       {"name": "prior_event", "concept": "event", "window": [-365, -1],
-                        "summary": "any"},
-                       {"name": "lab", "concept": "lab", "window": [-365, 0], "summary": "last"}],
-        "estimands": list(estimands),
-    })
+    return two_arm_protocol(
+        "balance-test", {"lab": {"source": "measurements", "codes": ["L1"]}},
+        covariates=[{"name": "age", "builtin": "age"},
+                    {"name": "region", "attribute": "region", "kind": "categorical"},
+                    {"name": "prior_event", "concept": "event", "window": [-365, -1],
+                     "summary": "any"},
+                    {"name": "lab", "concept": "lab", "window": [-365, 0], "summary": "last"}],
+        estimands=list(estimands))
 
 
 @pytest.fixture

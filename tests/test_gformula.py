@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from two_arm import two_arm_protocol
 
 from emulant import columns
 from emulant.gformula import (
@@ -18,7 +19,6 @@ from emulant.gformula import (
     person_period,
     time_basis,
 )
-from emulant.protocol import parse_protocol
 from emulant.sample import AnalysisSample
 from emulant.survival import SurvivalError, aalen_johansen, step_at, time_to_event_estimates
 from emulant.tte import censoring_assumption, hazard_ratio_label, outcome_arrays
@@ -107,21 +107,12 @@ def test_spline_basis_shape():
 
 def _protocol(methods=("ipw", "standardization", "doubly_robust"), estimands=("ATE", "ATT"),
               censoring_weights=False, competing=True, hazard_ratio=True):
-    return parse_protocol({
-        "study": {"id": "sim"},
-        "concepts": {"drug_a": {"source": "dispensings", "codes": ["XA1"]},
-                     "drug_b": {"source": "dispensings", "codes": ["XB1"]},
-                     "event": {"source": "diagnoses", "codes": ["EV1"]}},
-        "eligibility": {"entry": {"start": "2016-01-01", "end": "2021-12-31"}},
-        "strategies": {"arms": {"drug_a": {"initiate": "drug_a"},
-                                "drug_b": {"initiate": "drug_b"}}, "treated": "drug_a"},
-        "follow_up": {"max_days": 720},
-        "outcomes": {"primary": "event", "competing": ["death"] if competing else []},
-        "covariates": [{"name": "x", "attribute": "x"}],
-        "estimands": list(estimands),
-        "analysis": {"horizons_days": [180, 365, 720], "methods": list(methods),
-                     "period_days": P, "censoring_weights": censoring_weights,
-                     "hazard_ratio": hazard_ratio}})
+    return two_arm_protocol(
+        "sim", follow_up={"max_days": 720},
+        outcomes={"primary": "event", "competing": ["death"] if competing else []},
+        covariates=[{"name": "x", "attribute": "x"}], estimands=list(estimands),
+        analysis={"horizons_days": [180, 365, 720], "methods": list(methods), "period_days": P,
+                  "censoring_weights": censoring_weights, "hazard_ratio": hazard_ratio})
 
 
 def _simulate(n, seed, K=24):

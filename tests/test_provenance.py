@@ -12,23 +12,13 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from two_arm import two_arm_protocol
 
 from emulant import provenance
-from emulant.protocol import parse_protocol
-
-PROTOCOL = {
-    "study": {"id": "prov-test"},
-    "concepts": {"drug_a": {"source": "dispensings", "codes": ["XA1"]},
-                 "drug_b": {"source": "dispensings", "codes": ["XB1"]},
-                 "event": {"source": "diagnoses", "codes": ["EV1"]}},
-    "eligibility": {"entry": {"start": "2020-01-01", "end": "2020-12-31"}},
-    "strategies": {"arms": {"drug_a": {"initiate": "drug_a"}, "drug_b": {"initiate": "drug_b"}}, "treated": "drug_a"},
-    "outcomes": {"primary": "event"},
-}
 
 
 def _protocol(text: str = "v1"):
-    return parse_protocol(PROTOCOL, ".", None, text)
+    return two_arm_protocol("prov-test", text=text)
 
 
 def _results(tmp: Path, estimate: float, persons_sha: str) -> Path:

@@ -7,10 +7,10 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from two_arm import two_arm_protocol
 
 from emulant import columns
 from emulant.propensity import PropensityModel, build_design
-from emulant.protocol import parse_protocol
 from emulant.weights import (
     WeightsError,
     estimand_weights,
@@ -164,22 +164,13 @@ def test_bad_inputs_are_clear_errors():
 
 
 def _protocol(estimands=("ATE", "ATT", "ATO"), truncate=None):
-    return parse_protocol({
-        "study": {"id": "weights-test"},
-        "concepts": {"drug_a": {"source": "dispensings", "codes": ["A1"]},
-                     "drug_b": {"source": "dispensings", "codes": ["B1"]},
-                     "event": {"source": "diagnoses", "codes": ["E1"]}},
-        "eligibility": {"entry": {"start": "2016-01-01", "end": "2020-12-31"}},
-        "strategies": {"arms": {"drug_a": {"initiate": "drug_a"},
-                                "drug_b": {"initiate": "drug_b"}}, "treated": "drug_a"},
-        "outcomes": {"primary": "event"},
-        "covariates": [{"name": "age", "builtin": "age"},
-                       {"name": "region", "attribute": "region", "kind": "categorical"},
-                       {"name": "prior_event", "concept": "event", "window": [-365, -1],
-                        "summary": "any"}],
-        "estimands": list(estimands),
-        "analysis": {"weights": {"truncate": truncate}},
-    })
+    return two_arm_protocol(
+        "weights-test",
+        covariates=[{"name": "age", "builtin": "age"},
+                    {"name": "region", "attribute": "region", "kind": "categorical"},
+                    {"name": "prior_event", "concept": "event", "window": [-365, -1],
+                     "summary": "any"}],
+        estimands=list(estimands), analysis={"weights": {"truncate": truncate}})
 
 
 def _cohort(n=2000, seed=14):
