@@ -17,8 +17,6 @@ import yaml
 
 from emulant.errors import EmulantError
 
-BUILTIN_SOURCES = ("persons", "coverage", "deaths")
-EVENT_SOURCES = ("dispensings", "diagnoses", "measurements")
 SUMMARIES = ("any", "count", "last", "mean", "min", "max", "distinct_codes")
 VALUE_SUMMARIES = ("last", "mean", "min", "max")  # need a numeric `value`; missing when no record
 KINDS = ("continuous", "binary", "categorical")

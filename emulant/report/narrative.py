@@ -8,7 +8,7 @@ from typing import Any
 
 import pandas as pd
 
-from emulant.protocol import MeasuredOutcome, Protocol, outcome_name
+from emulant.protocol import MeasuredOutcome, Protocol
 from emulant.report import disclosure as dc
 from emulant.report import fmt
 from emulant.tte import censoring_assumption
@@ -260,7 +260,3 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
                       "(day 0); covariates use windows ending at day 0 or before; outcomes count "
                       "from day 1."], "threat": False},
     ]
-
-
-def outcome_names(p: Protocol) -> list[str]:
-    return [outcome_name(o) for o in p.outcomes.all()]
