@@ -19,7 +19,7 @@ import time
 import pandas as pd
 
 from emulant.cohort import build_cohort
-from emulant.effects import estimate_effects
+from emulant.estimation.effects import estimate_effects
 from emulant.extract import open_extract
 from emulant.protocol import load_protocol
 from synthetic_cohort.generate import write_synthetic

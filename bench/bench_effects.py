@@ -10,17 +10,18 @@ prints the ratio of one replicate's time to the point estimate's. The cohort is 
 from __future__ import annotations
 
 import time
+from functools import partial
 
 import numpy as np
 import pandas as pd
 
 from emulant import columns
-from emulant.bootstrap import replicate_freq, run_bootstrap
-from emulant.covariates import covariate_kinds
-from emulant.effects import estimate_sample
-from emulant.propensity import build_design
+from emulant.cohort.covariates import covariate_kinds
+from emulant.estimation.bootstrap import replicate_freq, run_bootstrap
+from emulant.estimation.effects import estimate_sample, replicate_estimates
+from emulant.estimation.sample import build_sample
+from emulant.models.propensity import build_design
 from emulant.protocol import parse_protocol
-from emulant.sample import build_sample
 
 N = 200_000
 REPLICATES = 20
@@ -85,7 +86,8 @@ def main() -> None:
     estimate_sample(build_sample(cohort, p, design, X, replicate_freq(len(cohort), 5, 0)))
     t_one = time.perf_counter() - t0
     t0 = time.perf_counter()
-    run = run_bootstrap(cohort, p, design, X, rows, curves, workers=WORKERS, progress=False)
+    estimator = partial(replicate_estimates, cohort, p, design, X)
+    run = run_bootstrap(estimator, len(cohort), p, rows, curves, workers=WORKERS, progress=False)
     t_boot = time.perf_counter() - t0
     print(f"cohort: {len(cohort):,} persons, {X.shape[1]} design columns, {len(rows)} estimate rows")
     print(f"design (learned once):             {t_design:8.2f} s")

@@ -16,12 +16,12 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
-from emulant.cox import cox_hazard_ratio
-from emulant.gformula import gformula_incidence, hazard_models
+from emulant.estimation.cox import cox_hazard_ratio
+from emulant.estimation.pooled_logistic import gformula_incidence, hazard_models
+from emulant.estimation.sample import AnalysisSample
+from emulant.estimation.survival import aalen_johansen, km
+from emulant.estimation.tte import outcome_arrays, time_to_event_estimates
 from emulant.protocol import parse_protocol
-from emulant.sample import AnalysisSample
-from emulant.survival import aalen_johansen, km
-from emulant.tte import outcome_arrays, time_to_event_estimates
 
 N = 200_000
 P_COVARIATES = 10

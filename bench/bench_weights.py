@@ -102,10 +102,11 @@ def _timed(label: str, fn, *args, **kw):
 def main() -> None:
     import statsmodels.api as sm
 
-    from emulant.balance import balance_table
-    from emulant.propensity import PropensityModel
+    from emulant.models.balance import balance_table
+    from emulant.models.positivity import positivity_of
+    from emulant.models.propensity import PropensityModel
+    from emulant.models.weights import design_for, estimand_weights, fit_weights, treated_indicator
     from emulant.protocol import parse_protocol
-    from emulant.weights import design_for, estimand_weights, fit_weights, treated_indicator
 
     t0 = time.perf_counter()
     got = _generated_cohort(N)
@@ -126,8 +127,9 @@ def main() -> None:
                  lambda: sm.Logit(a, Xc).fit(disp=0, method="newton", tol=1e-10))
     diff = np.max(np.abs(ours.predict(X) - ref.predict(Xc)))
     print(f"  max |e_ours - e_statsmodels| = {diff:.2e}; iterations ours {ours.n_iter_}")
-    wdf, pos = _timed("fit_weights (design, fit, weights, positivity)", fit_weights, cohort,
-                      protocol)
+    fit = _timed("fit_weights (design, fit, weights)", fit_weights, cohort, protocol)
+    pos = _timed("positivity_of", positivity_of, fit, protocol)
+    wdf = fit.table
     _timed("balance_table", balance_table, cohort, wdf, protocol)
     rng = np.random.default_rng(SEED)
     model = PropensityModel(warm_start=True).fit(X, a)

@@ -5,6 +5,10 @@ access works, so tests call them with ``types.SimpleNamespace``). :func:`run` is
 entry: it sends the log to the rule's log file and turns our errors into a plain message and
 exit code 2, never a traceback. Outputs are written to a temporary name and renamed, so a
 failure never leaves a half-written file behind.
+
+Each stage imports the library modules it needs inside its function, so that a rule's job loads
+only its own stage (a Snakemake job is one process per rule); this is about start-up time, not
+import circles, which ``tests/test_imports.py`` rules out for these imports too.
 """
 
 from __future__ import annotations
@@ -103,16 +107,17 @@ def build_cohort(input: Any, output: Any, params: Any) -> None:
 
 
 def fit_weights(input: Any, output: Any, params: Any) -> None:
-    from emulant.weights import fit_weights as fit
+    from emulant.models.positivity import positivity_of
+    from emulant.models.weights import fit_weights as fit_weights_of
 
     protocol = load_protocol(_protocol_path(input))
-    weights, positivity = fit(pd.read_parquet(input.cohort), protocol)
-    write_parquet(output.weights, weights)
-    write_json(output.positivity, positivity)
+    fit = fit_weights_of(pd.read_parquet(input.cohort), protocol)
+    write_parquet(output.weights, fit.table)
+    write_json(output.positivity, positivity_of(fit, protocol))
 
 
 def check_balance(input: Any, output: Any, params: Any) -> None:
-    from emulant.balance import balance_table
+    from emulant.models.balance import balance_table
 
     protocol = load_protocol(_protocol_path(input))
     table = balance_table(pd.read_parquet(input.cohort), pd.read_parquet(input.weights), protocol)
@@ -120,7 +125,7 @@ def check_balance(input: Any, output: Any, params: Any) -> None:
 
 
 def estimate_effects(input: Any, output: Any, params: Any) -> None:
-    from emulant.effects import estimate_effects as estimate
+    from emulant.estimation.effects import estimate_effects as estimate
 
     protocol = load_protocol(_protocol_path(input))
     res = estimate(pd.read_parquet(input.cohort), protocol, workers=int(params.workers),
@@ -131,7 +136,7 @@ def estimate_effects(input: Any, output: Any, params: Any) -> None:
 
 
 def render_report(input: Any, output: Any, params: Any) -> None:
-    from emulant import provenance
+    from emulant.audit import provenance
     from emulant.report import render_report as render
 
     protocol = load_protocol(_protocol_path(input))
@@ -146,7 +151,7 @@ def render_report(input: Any, output: Any, params: Any) -> None:
 
 
 def archive_report(input: Any, output: Any, params: Any) -> None:
-    from emulant import provenance
+    from emulant.audit import provenance
 
     entry = provenance.archive_run(input.manifest, input.report, Path(input.check).parent,
                                    params.reports)

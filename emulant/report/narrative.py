@@ -11,7 +11,7 @@ import pandas as pd
 from emulant.protocol import MeasuredOutcome, Protocol
 from emulant.report import disclosure as dc
 from emulant.report import fmt
-from emulant.tte import censoring_assumption
+from emulant.wording import censoring_assumption
 
 COMPONENTS = (
     ("eligibility", "Eligibility criteria"),

@@ -14,7 +14,7 @@ from emulant import columns as col
 from emulant.protocol import Protocol, outcome_name
 from emulant.report import disclosure as dc
 from emulant.report import fmt
-from emulant.tte import hazard_ratio_label
+from emulant.wording import hazard_ratio_label
 
 METHOD_ORDER = ("unadjusted", "ipw", "standardization", "doubly_robust")
 MEASURE_ORDER = ("risk", "risk_difference", "risk_ratio", "hazard_ratio", "mean",

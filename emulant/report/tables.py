@@ -11,6 +11,7 @@ from typing import Any
 import pandas as pd
 
 from emulant import columns as col
+from emulant.cohort.covariates import covariate_kinds
 from emulant.protocol import Protocol
 from emulant.report import disclosure as dc
 from emulant.report import fmt
@@ -50,26 +51,8 @@ def attrition(df: pd.DataFrame, min_cell: int) -> list[dict]:
 
 
 def _kinds(protocol: Protocol, cohort: pd.DataFrame) -> dict[str, str]:
-    """Covariate kinds: ``emulant.covariates.covariate_kinds`` when present, else dtype rules."""
-    try:
-        from emulant.covariates import covariate_kinds
-
-        return dict(covariate_kinds(protocol, cohort))
-    except ImportError:
-        pass
-    out = {}
-    for c in protocol.covariates:
-        if c.kind:
-            out[c.name] = c.kind
-            continue
-        s = cohort[c.name] if c.name in cohort else pd.Series(dtype=float)
-        if not pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
-            out[c.name] = "categorical"
-        elif set(pd.unique(s.dropna())) <= {0, 1}:
-            out[c.name] = "binary"
-        else:
-            out[c.name] = "continuous"
-    return out
+    """Covariate kinds, as :func:`emulant.cohort.covariates.covariate_kinds` decides them."""
+    return dict(covariate_kinds(protocol, cohort))
 
 
 def _smd_lookup(balance: pd.DataFrame | None) -> dict[tuple[str, str], dict]:

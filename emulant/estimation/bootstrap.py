@@ -1,0 +1,368 @@
+"""Nonparametric bootstrap of the whole analysis, as frequency weights.
+
+Replicate ``r`` draws multinomial counts ``freq ~ Multinomial(n, 1/n, …, 1/n)`` from its own
+random stream ``numpy.random.default_rng([seed, r])`` and refits everything with them: the
+propensity model, each estimand's weights (with truncation), the censoring models and the
+outcome models (:func:`emulant.estimation.sample.build_sample`, :func:`emulant.estimation.effects.estimate_sample`).
+The rows are never copied: the cohort and its design matrix are handed to each worker once,
+by the pool's initializer. Each worker runs one BLAS thread, and a replicate's numbers depend
+only on ``(seed, r)``, so results are identical bit for bit whatever the number of workers.
+
+Standard error: the standard deviation of the replicate estimates (on the log scale for the
+ratio measures ``risk_ratio`` and ``hazard_ratio``). Intervals at 95%: ``wald`` (estimate ±
+1.96·SE, on the log scale for ratios, then exponentiated) or ``percentile`` (the 2.5th and
+97.5th percentiles of the replicates). Source: Efron & Tibshirani, *An Introduction to the
+Bootstrap* (1993), chapters 6 and 13.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+import time
+import warnings
+from collections import Counter
+from collections.abc import Callable, Iterator
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from multiprocessing import get_all_start_methods, get_context
+from typing import Any
+
+import numpy as np
+
+from emulant.errors import EmulantError, NonConvergenceWarning, ReplicateFailure
+
+ROW_KEY = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
+           "comparator")
+CURVE_KEY = ("outcome", "contrast", "estimand", "method", "arm", "day")  # outcome when present
+RATIO_MEASURES = ("risk_ratio", "hazard_ratio")
+MAX_FAILED_SHARE = 0.05
+Z_975 = 1.959963984540054  # the standard normal's 97.5th percentile ("1.96")
+_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
+                "VECLIB_MAXIMUM_THREADS", "NUMEXPR_NUM_THREADS")
+
+
+class BootstrapError(EmulantError):
+    """Too many failed replicates (above 5%); the message gives the counts and the reasons."""
+
+
+# ----------------------------------------------------------------------------- resampling
+
+
+def replicate_freq(n: int, seed: int, r: int) -> np.ndarray:
+    """Multinomial frequency weights of replicate ``r``: one stream per ``(seed, r)``."""
+    rng = np.random.default_rng([seed, r])
+    return rng.multinomial(n, np.full(n, 1.0 / n)).astype(float)
+
+
+def _norm(v: Any) -> Any:
+    if v is None or (isinstance(v, float) and math.isnan(v)):
+        return None
+    if isinstance(v, np.generic):
+        return v.item()
+    return v
+
+
+def row_key(row: dict, key_columns: tuple[str, ...]) -> tuple:
+    """The identifying columns of a row (missing ones and NaN read as None)."""
+    return tuple(_norm(row.get(c)) for c in key_columns)
+
+
+def key_index(rows: list[dict], key_columns: tuple[str, ...]) -> dict[tuple, int]:
+    idx: dict[tuple, int] = {}
+    for i, row in enumerate(rows):
+        k = row_key(row, key_columns)
+        if k in idx:
+            raise ValueError(f"two estimate rows share the key {dict(zip(key_columns, k, strict=True))}")
+        idx[k] = i
+    return idx
+
+
+def align(rows: list[dict], index: dict[tuple, int], key_columns: tuple[str, ...],
+          value: str) -> np.ndarray:
+    """A replicate's values in the point estimate's row order (NaN for a row it lacks)."""
+    out = np.full(len(index), np.nan)
+    for row in rows:
+        i = index.get(row_key(row, key_columns))
+        if i is not None and row.get(value) is not None:
+            out[i] = float(row[value])
+    return out
+
+
+# ----------------------------------------------------------------------------- workers
+
+_STATE: dict[str, Any] = {}
+
+
+@contextmanager
+def _one_thread_env() -> Iterator[None]:
+    """Set the BLAS thread variables to 1 while worker processes start (read at their import)."""
+    old = {k: os.environ.get(k) for k in _THREAD_VARS}
+    os.environ.update({k: "1" for k in _THREAD_VARS})
+    try:
+        yield
+    finally:
+        for k, v in old.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+def _init_worker(state: dict[str, Any]) -> None:
+    from threadpoolctl import threadpool_limits
+
+    _STATE.clear()
+    _STATE.update(state)
+    _STATE["limits"] = threadpool_limits(limits=1)  # kept alive for the worker's life
+
+
+def _replicate(r: int) -> tuple[int, np.ndarray | None, np.ndarray | None, str | None]:
+    """Run replicate ``r`` on the worker's shared state; a failure returns its reason."""
+    s = _STATE
+    freq = replicate_freq(s["n"], s["seed"], r)
+    try:
+        with np.errstate(all="ignore"), warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")  # kept to look for non-convergence, never shown
+            rows, curves = s["estimator"](freq)
+        failed = [w for w in caught if issubclass(w.category, NonConvergenceWarning)]
+        if failed:
+            return r, None, None, str(failed[0].message)
+    except ReplicateFailure as exc:
+        return r, None, None, exc.reason
+    except Exception as exc:  # noqa: BLE001 - any failure of a replicate is counted, not raised
+        return r, None, None, f"error: {type(exc).__name__}: {str(exc)[:80]}"
+    vals = align(rows, s["row_index"], ROW_KEY, "estimate")
+    cvals = align(curves, s["curve_index"], CURVE_KEY, "risk")
+    return r, vals, cvals, None
+
+
+# ----------------------------------------------------------------------------- progress
+
+
+class _Progress:
+    """A plain-text bar on stderr when it is a terminal, or a callback ``f(done, total)``."""
+
+    def __init__(self, total: int, progress: bool | Callable | None):
+        self.total = total
+        self.fn = progress if callable(progress) else None
+        self.bar = progress is True or (progress is None and sys.stderr.isatty())
+        self.start = time.monotonic()
+
+    def update(self, done: int, failed: int) -> None:
+        if self.fn is not None:
+            self.fn(done, self.total)
+        if self.bar and self.total:
+            width = 30
+            full = int(width * done / self.total)
+            secs = time.monotonic() - self.start
+            sys.stderr.write(f"\rbootstrap [{'#' * full}{'.' * (width - full)}] {done}/{self.total}"
+                             f" replicates, {failed} failed, {secs:.0f} s")
+            sys.stderr.flush()
+
+    def close(self) -> None:
+        if self.bar and self.total:
+            sys.stderr.write("\n")
+            sys.stderr.flush()
+
+
+# ----------------------------------------------------------------------------- the run
+
+
+@dataclass
+class BootstrapRun:
+    """Replicate estimates (completed replicates only, in replicate order) and their account."""
+
+    requested: int
+    seed: int
+    interval: str
+    workers: int
+    start_method: str
+    row_reps: np.ndarray  # completed x rows
+    curve_reps: np.ndarray  # completed x curve rows
+    reasons: dict[str, int] = field(default_factory=dict)
+    seconds: float = 0.0
+
+    @property
+    def failed(self) -> int:
+        return int(sum(self.reasons.values()))
+
+    @property
+    def completed(self) -> int:
+        return int(self.row_reps.shape[0])
+
+    def account(self) -> dict[str, Any]:
+        """bootstrap.json: what was asked, what completed, why replicates failed."""
+        return {"requested": self.requested, "completed": self.completed, "failed": self.failed,
+                "failure_reasons": dict(self.reasons), "seed": self.seed,
+                "interval": self.interval, "level": 0.95, "workers": self.workers,
+                "start_method": self.start_method, "seconds": round(self.seconds, 3),
+                "se_scale": {m: "log" for m in RATIO_MEASURES},
+                "resampling": "multinomial frequency weights, numpy default_rng([seed, r])"}
+
+
+def _too_many(failed: int, requested: int) -> bool:
+    return failed > MAX_FAILED_SHARE * requested
+
+
+def _fail_message(reasons: Counter, requested: int) -> str:
+    why = "; ".join(f"{k}: {v}" for k, v in reasons.most_common())
+    return (f"bootstrap stopped: {sum(reasons.values())} of {requested} replicates failed "
+            f"(more than {MAX_FAILED_SHARE:.0%}); reasons — {why}")
+
+
+def _run_serial(state, reps, on_result) -> None:
+    from threadpoolctl import threadpool_limits
+
+    saved = dict(_STATE)
+    try:
+        _STATE.clear()
+        _STATE.update(state)
+        with threadpool_limits(limits=1):
+            for r in reps:
+                if on_result(_replicate(r)):
+                    return
+    finally:
+        _STATE.clear()
+        _STATE.update(saved)
+
+
+def default_start_method() -> str:
+    """'fork' where the platform has it, else 'spawn'.
+
+    Fork does not re-run the caller's main module in the workers (spawn does, which fails in a
+    script without an ``if __name__ == "__main__"`` guard, such as a workflow script); the workers
+    only run numpy code with one BLAS thread (OpenBLAS shuts its threads down around a fork).
+    """
+    return "fork" if "fork" in get_all_start_methods() else "spawn"
+
+
+def _run_pool(state, reps, on_result, workers: int, start_method: str | None) -> None:
+    start_method = start_method or default_start_method()
+    with _one_thread_env():
+        pool = ProcessPoolExecutor(max_workers=workers, mp_context=get_context(start_method),
+                                   initializer=_init_worker, initargs=(state,))
+        try:
+            pending = {pool.submit(_replicate, r) for r in reps}
+            while pending:
+                done, pending = wait(pending, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    if on_result(fut.result()):
+                        for p in pending:
+                            p.cancel()
+                        return
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+
+def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]]], n: int,
+                  protocol, rows: list[dict], curves: list[dict], workers: int = 2, progress: bool | Callable | None = None,
+                  start_method: str | None = None, replicates: int | None = None,
+                  seed: int | None = None) -> BootstrapRun:
+    """Run the protocol's bootstrap replicates; ``rows``/``curves`` are the point estimate's.
+
+    ``estimator(freq)`` refits the whole analysis with frequency weights ``freq`` (one per each of
+    the ``n`` persons) and returns its ``(rows, curves)``; a :class:`~emulant.errors.ReplicateFailure`
+    it raises fails that replicate with the exception's ``reason``. With worker processes it
+    must pickle (a module-level function or a :func:`functools.partial` of one).
+
+    Raises
+    ------
+    BootstrapError
+        As soon as more than 5% of the requested replicates have failed.
+    """
+    settings = protocol.analysis.bootstrap
+    requested = settings.replicates if replicates is None else int(replicates)
+    seed = settings.seed if seed is None else int(seed)
+    state = {"estimator": estimator, "n": int(n), "seed": seed,
+             "row_index": key_index(rows, ROW_KEY), "curve_index": key_index(curves, CURVE_KEY)}
+    results: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    reasons: Counter = Counter()
+    bar = _Progress(requested, progress)
+    t0 = time.monotonic()
+
+    def on_result(res) -> bool:
+        r, vals, cvals, reason = res
+        if reason is None:
+            results[r] = (vals, cvals)
+        else:
+            reasons[reason] += 1
+        bar.update(len(results) + sum(reasons.values()), sum(reasons.values()))
+        return _too_many(sum(reasons.values()), requested)
+
+    try:
+        if requested > 0 and workers > 1:
+            _run_pool(state, range(requested), on_result, workers, start_method)
+        elif requested > 0:
+            _run_serial(state, range(requested), on_result)
+    finally:
+        bar.close()
+    if _too_many(sum(reasons.values()), requested):
+        raise BootstrapError(_fail_message(reasons, requested))
+    order = sorted(results)
+    row_reps = np.array([results[r][0] for r in order]).reshape(len(order), len(rows))
+    curve_reps = np.array([results[r][1] for r in order]).reshape(len(order), len(curves))
+    method = "in-process" if workers <= 1 else (start_method or default_start_method())
+    return BootstrapRun(requested, seed, settings.interval, max(1, workers), method,
+                        row_reps, curve_reps, dict(reasons), time.monotonic() - t0)
+
+
+# ----------------------------------------------------------------------------- intervals
+
+
+def bootstrap_intervals(point: np.ndarray, reps: np.ndarray, ratio: np.ndarray,
+                        interval: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    r"""Bootstrap SE and 95% interval per column of ``reps`` (replicates x estimates).
+
+    .. math:: \widehat{SE} = \operatorname{SD}_r(\hat\theta^{*}_r), \qquad
+              \text{wald: } \hat\theta \pm 1.96\,\widehat{SE}, \qquad
+              \text{percentile: } [\hat\theta^{*}_{(2.5\%)}, \hat\theta^{*}_{(97.5\%)}]
+
+    For ``ratio`` columns :math:`\theta` is replaced by :math:`\log\theta` in the SE and the
+    Wald interval, whose ends are then exponentiated; the SE is reported on the log scale.
+    Fewer than two finite replicate values give NaN. Source: Efron & Tibshirani (1993), ch. 6, 13.
+    """
+    point = np.asarray(point, dtype=float)
+    k = point.shape[0]
+    nan = np.full(k, np.nan)
+    if reps.shape[0] == 0 or k == 0:
+        return nan, nan.copy(), nan.copy()
+    ratio = np.asarray(ratio, dtype=bool)
+    with np.errstate(all="ignore"):
+        scale = np.where(ratio, np.log(np.where(reps > 0, reps, np.nan)), reps)
+        centre = np.where(ratio, np.log(np.where(point > 0, point, np.nan)), point)
+    finite = np.isfinite(scale)
+    count = finite.sum(axis=0)
+    se = nan.copy()
+    ok = count >= 2
+    if ok.any():
+        se[ok] = np.nanstd(scale[:, ok], axis=0, ddof=1)
+    if interval == "wald":
+        lo, hi = centre - Z_975 * se, centre + Z_975 * se
+        lo = np.where(ratio, np.exp(lo), lo)
+        hi = np.where(ratio, np.exp(hi), hi)
+    elif interval == "percentile":
+        lo, hi = nan.copy(), nan.copy()
+        if ok.any():
+            raw = np.where(finite, reps, np.nan)[:, ok]
+            lo[ok], hi[ok] = np.nanquantile(raw, [0.025, 0.975], axis=0)
+    else:
+        raise ValueError(f"analysis.bootstrap.interval: expected wald or percentile, got {interval!r}")
+    return se, lo, hi
+
+
+def attach_intervals(rows: list[dict], curves: list[dict], run: BootstrapRun,
+                     interval: str) -> tuple[list[dict], list[dict]]:
+    """New rows with ``se, ci_low, ci_high`` (estimates) and ``ci_low, ci_high`` (curves)."""
+    point = np.array([np.nan if r.get("estimate") is None else float(r["estimate"]) for r in rows])
+    ratio = np.array([r.get("measure") in RATIO_MEASURES for r in rows], dtype=bool)
+    se, lo, hi = bootstrap_intervals(point, run.row_reps, ratio, interval)
+    out = [{**r, "se": float(s), "ci_low": float(a), "ci_high": float(b)}
+           for r, s, a, b in zip(rows, se, lo, hi, strict=True)]
+    cpoint = np.array([np.nan if c.get("risk") is None else float(c["risk"]) for c in curves])
+    _, clo, chi = bootstrap_intervals(cpoint, run.curve_reps, np.zeros(len(curves), bool), interval)
+    cout = [{**c, "ci_low": float(a), "ci_high": float(b)}
+            for c, a, b in zip(curves, clo, chi, strict=True)]
+    return out, cout

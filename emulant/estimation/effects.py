@@ -1,0 +1,169 @@
+"""Effect estimates for each outcome, estimand and method, with bootstrap intervals.
+
+The orchestration of the estimation stage: one analysis sample (:mod:`.sample`) per point
+estimate or bootstrap replicate; measured outcomes by :mod:`.measured`, time-to-event outcomes
+by :mod:`.tte` (their curve rows get an ``outcome`` column, the first column of ``curves``); the
+bootstrap (:mod:`.bootstrap`) refits all of it through :func:`replicate_estimates`; E-values
+(:mod:`.evalue`) come last.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from functools import partial
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from emulant import columns
+from emulant.cohort.covariates import covariate_kinds
+from emulant.estimation.bootstrap import attach_intervals, run_bootstrap
+from emulant.estimation.evalue import e_value_rows
+from emulant.estimation.measured import EstimationError, measured_outcome_rows
+from emulant.estimation.sample import TREATED, AnalysisSample, SampleError, build_sample
+from emulant.estimation.tte import time_to_event_estimates
+from emulant.models.design import DesignError, build_design
+from emulant.models.weights import WeightsError
+from emulant.protocol import MeasuredOutcome, Protocol
+
+log = logging.getLogger(__name__)
+
+ESTIMATE_COLUMNS = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
+                    "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events")
+CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low", "ci_high",
+                 "at_risk")
+EffectsError = EstimationError  # the same class under the module's name
+
+
+def estimate_sample(sample: AnalysisSample) -> tuple[list[dict], list[dict]]:
+    """Every outcome of the protocol for one sample (the point estimate or one replicate).
+
+    Returns ``(rows, curve_rows)``: estimates.csv rows without ``se, ci_low, ci_high`` and
+    curves.csv rows without ``ci_low, ci_high``.
+    """
+    rows: list[dict] = []
+    curves: list[dict] = []
+    outcomes = sample.protocol.outcomes
+    for outcome in outcomes.all():  # primary, secondary, negative controls
+        if isinstance(outcome, MeasuredOutcome):
+            rows += measured_outcome_rows(sample, outcome)
+        else:
+            r, c = time_to_event_estimates(sample, outcome)
+            rows += list(r)
+            # curves.csv has no outcome column (CONTRACTS §4); with several time-to-event
+            # outcomes their curves need one to be told apart: the outcome's name
+            curves += [{"outcome": outcome, **row} for row in c]
+    return rows, curves
+
+
+def replicate_estimates(cohort: pd.DataFrame, protocol: Protocol, design: Any, X: np.ndarray,
+                        freq: np.ndarray) -> tuple[list[dict], list[dict]]:
+    """One bootstrap replicate: the whole analysis refitted with frequency weights ``freq``.
+
+    A sample whose models warn (e.g. a propensity model that did not converge) fails the
+    replicate with that warning as its reason.
+    """
+    sample = build_sample(cohort, protocol, design, X, freq)
+    if sample.warnings:
+        raise SampleError(sample.warnings[0])
+    return estimate_sample(sample)
+
+
+# ----------------------------------------------------------------------------- results
+
+
+@dataclass
+class EffectsResult:
+    """Estimates (estimates.csv), curves (curves.csv) and the bootstrap's account (bootstrap.json)."""
+
+    estimates: pd.DataFrame
+    curves: pd.DataFrame
+    bootstrap: dict = field(default_factory=dict)
+
+    @property
+    def summary(self) -> pd.DataFrame:
+        return self.estimates
+
+    def to_dict(self) -> dict[str, Any]:
+        def records(df: pd.DataFrame) -> list[dict]:
+            return [{k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in r.items()}
+                    for r in df.to_dict(orient="records")]
+
+        return {"estimates": records(self.estimates), "curves": records(self.curves),
+                "bootstrap": dict(self.bootstrap)}
+
+
+def _frame(rows: list[dict], contract: tuple[str, ...]) -> pd.DataFrame:
+    df = pd.DataFrame(rows)
+    for c in contract:
+        if c not in df.columns:
+            df[c] = np.nan
+    for c in ("horizon_day", "day", "n", "events", "at_risk"):
+        if c in df.columns:
+            df[c] = _whole_numbers(df[c])
+    extra = [c for c in df.columns if c not in contract]
+    return df[extra + list(contract)] if extra else df[list(contract)]
+
+
+def _whole_numbers(s: pd.Series) -> pd.Series:
+    """A count or day column as nullable integers when every value is whole (CSV shows 365)."""
+    v = pd.to_numeric(s, errors="coerce")
+    known = v.dropna()
+    if len(known) and np.all(np.isclose(known, np.round(known), rtol=0, atol=1e-9)):
+        return v.round().astype("Int64")
+    return v if len(known) else s
+
+
+def check_cohort(cohort: pd.DataFrame, protocol: Protocol) -> None:
+    """Raise :class:`EffectsError` naming a column the estimators need that the cohort lacks."""
+    need = [TREATED] + [columns.value(m.measure) for m in protocol.outcomes.measured()]
+    missing = [c for c in need if c not in cohort.columns]
+    if missing:
+        raise EstimationError(f"cohort: missing column(s) {', '.join(missing)}")
+    if len(cohort) == 0:
+        raise EstimationError("cohort: no rows")
+
+
+def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
+                     progress: bool | Callable | None = None,
+                     start_method: str | None = None) -> EffectsResult:
+    """The point estimates of every outcome, estimand and method, with bootstrap intervals.
+
+    The design (levels, knots) is learned once on the whole cohort; the point estimate uses unit
+    frequency weights; ``analysis.bootstrap.replicates`` replicates refit everything with
+    multinomial frequency weights (:func:`emulant.estimation.bootstrap.run_bootstrap`).
+
+    Parameters
+    ----------
+    cohort : cohort.parquet as a DataFrame.
+    protocol : the parsed protocol.
+    workers : processes for the bootstrap (1 runs in this process).
+    progress : None (a bar on stderr when it is a terminal), True/False, or ``f(done, total)``.
+    start_method : the worker pool's start method, 'fork' (default where available) or 'spawn'
+        (which re-imports the caller's main module: guard it with ``if __name__ == "__main__"``).
+    """
+
+    check_cohort(cohort, protocol)
+    try:
+        kinds = covariate_kinds(protocol, cohort)
+        design = build_design(cohort, protocol.covariates, kinds,
+                              protocol.analysis.propensity.continuous)
+        X = np.asarray(design.transform(cohort), dtype=float)
+        point = build_sample(cohort, protocol, design, X)
+        rows, curves = estimate_sample(point)
+    except (SampleError, DesignError, WeightsError) as exc:
+        raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
+    for w in point.warnings:
+        log.warning("point estimate: %s", w)
+    estimator = partial(replicate_estimates, cohort, protocol, design, X)
+    boot = run_bootstrap(estimator, len(cohort), protocol, rows, curves, workers=workers,
+                         progress=progress, start_method=start_method)
+    rows, curves = attach_intervals(rows, curves, boot, protocol.analysis.bootstrap.interval)
+    rows = rows + e_value_rows(rows)
+    account = boot.account()
+    account["point_estimate_warnings"] = list(point.warnings)
+    return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account)

@@ -1,0 +1,214 @@
+"""Time-to-event effects of one outcome: the rows of ``estimates.csv`` and ``curves.csv``.
+
+:func:`time_to_event_estimates` is called for the point estimate and for every bootstrap
+replicate (an :class:`~emulant.estimation.sample.AnalysisSample` differing only in ``freq`` and what was
+refitted with it); it returns point values only, on a fixed grid of days so replicates line up,
+and the bootstrap adds ``se``, ``ci_low`` and ``ci_high``.
+
+Methods (each estimand of the protocol; ``unadjusted`` once, with ``estimand`` empty):
+
+* ``unadjusted``: Aalen–Johansen (Kaplan–Meier without competing events) by arm, crude rates,
+  and the Cox hazard ratio.
+* ``ipw``: the same curves weighted by the estimand's inverse probability of treatment weights
+  (Cole & Hernán 2004, Comput Methods Programs Biomed 75:45), and the weighted Cox hazard ratio;
+  with ``analysis.censoring_weights`` the curve is the inverse probability of censoring weighted
+  cumulative incidence (:func:`emulant.estimation.tte_weighting.ipcw_incidence`). The hazard ratio uses
+  the treatment weights alone (censored persons leave its risk sets); it is cause-specific
+  with competing events (:mod:`emulant.estimation.cox`, with the caution on hazard ratios).
+* ``standardization``: the parametric g-formula with pooled logistic hazards
+  (:mod:`emulant.estimation.pooled_logistic`).
+* ``doubly_robust``: the augmented IPW risk at each horizon (:func:`emulant.estimation.tte_weighting.aipw_risk`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from emulant import columns
+from emulant.estimation.cox import cox_hazard_ratio
+from emulant.estimation.pooled_logistic import at_days, gformula_incidence, hazard_models
+from emulant.estimation.survival import (
+    COMPETING,
+    OUTCOME,
+    SurvivalError,
+    aalen_johansen,
+    crude_rate,
+    day_grid,
+    events_by,
+    number_at_risk,
+    step_at,
+)
+from emulant.estimation.tte_weighting import (
+    aipw_risk,
+    censoring_at,
+    ipcw_incidence,
+    standardized_risks,
+    target_weights,
+)
+
+CONTRAST = "intention_to_treat"
+STATUS = {"outcome": OUTCOME, "competing": COMPETING}
+
+
+def outcome_arrays(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
+    """``time`` (days) and ``status`` (0 censored, 1 outcome, 2 competing) of one outcome."""
+    day_col, reason_col = columns.end_day(outcome), columns.end_reason(outcome)
+    for col in (day_col, reason_col):
+        if col not in cohort.columns:
+            raise SurvivalError(f"cohort: column {col!r} is missing (outcome {outcome!r})")
+    time = cohort[day_col].to_numpy(dtype=float)
+    reason = cohort[reason_col].astype(str).to_numpy()
+    bad = ~np.isin(reason, columns.END_REASONS)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise SurvivalError(f"cohort: column {reason_col!r}, row {i}: {reason[i]!r} is not one "
+                            f"of {list(columns.END_REASONS)}")
+    if np.isnan(time).any():
+        i = int(np.flatnonzero(np.isnan(time))[0])
+        raise SurvivalError(f"cohort: column {day_col!r}, row {i} is missing")
+    status = np.select([reason == "outcome", reason == "competing"], [OUTCOME, COMPETING], 0)
+    return time, status
+
+
+def _row(outcome, estimand, method, measure, horizon, arm, comparator, estimate, n, events):
+    return {"outcome": outcome, "contrast": CONTRAST, "estimand": estimand, "method": method,
+            "measure": measure, "horizon_day": horizon, "arm": arm, "comparator": comparator,
+            "estimate": float(estimate), "n": None if n is None else int(round(n)),
+            "events": None if events is None else int(round(events))}
+
+
+class _Context:
+    """What every method of one outcome shares: arrays, arms, grid, counts."""
+
+    def __init__(self, sample, outcome: str):
+        p = sample.protocol
+        self.outcome, self.protocol = outcome, p
+        self.time, self.status = outcome_arrays(sample.cohort, outcome)
+        self.a = np.asarray(sample.a).astype(int)
+        self.f = np.asarray(sample.freq, dtype=float)
+        self.X, self.e, self.weights = sample.X, np.asarray(sample.e, float), sample.weights
+        self.arms = {1: sample.treated_arm, 0: sample.comparator_arm}
+        self.P = p.analysis.period_days
+        self.max_days = p.follow_up.max_days
+        self.horizons = tuple(p.analysis.horizons_days)
+        self.grid = day_grid(self.max_days, self.P)
+        self.K = max(1, math.ceil(self.max_days / self.P))
+        self.competing = bool(p.outcomes.competing) or bool(np.any(self.status == COMPETING))
+        self.n = {g: float(self.f[self.a == g].sum()) for g in (0, 1)}
+        self.events = {(g, h): events_by(self.time[self.a == g], self.status[self.a == g],
+                                         self.f[self.a == g], h)
+                       for g in (0, 1) for h in self.horizons}
+        self.at_risk = {g: number_at_risk(self.time[self.a == g], self.f[self.a == g], self.grid)
+                        for g in (0, 1)}
+
+    def contrast_rows(self, estimand, method, risk):
+        """risk per arm, risk_difference and risk_ratio at each horizon; risk[g][h]."""
+        rows, o = [], self.outcome
+        for h in self.horizons:
+            for g in (1, 0):
+                rows.append(_row(o, estimand, method, "risk", h, self.arms[g], None,
+                                 risk[g][h], self.n[g], self.events[g, h]))
+            n, ev = self.n[0] + self.n[1], self.events[0, h] + self.events[1, h]
+            r1, r0 = risk[1][h], risk[0][h]
+            rows.append(_row(o, estimand, method, "risk_difference", h, self.arms[1],
+                             self.arms[0], r1 - r0, n, ev))
+            rr = r1 / r0 if r0 > 0 else float("nan")
+            rows.append(_row(o, estimand, method, "risk_ratio", h, self.arms[1], self.arms[0],
+                             rr, n, ev))
+        return rows
+
+    def curve_rows(self, estimand, method, curves):
+        rows = []
+        for g in (1, 0):
+            for day, r, nr in zip(self.grid, curves[g], self.at_risk[g], strict=True):
+                rows.append({"contrast": CONTRAST, "estimand": estimand, "method": method,
+                             "arm": self.arms[g], "day": int(day), "risk": float(r),
+                             "at_risk": int(round(nr))})
+        return rows
+
+    def hazard_ratio_row(self, estimand, method, w):
+        """Cox hazard ratio weighted by ``w`` (None: unweighted) with the frequency weights."""
+        hr = cox_hazard_ratio(self.time, self.status, self.a, w, freq=self.f)
+        return _row(self.outcome, estimand, method, "hazard_ratio", None, self.arms[1],
+                    self.arms[0], hr.hr, hr.n, hr.events)
+
+    def aj_curves(self, w):
+        """Weighted Aalen–Johansen cumulative incidence by arm on the grid and at horizons."""
+        curves, risk = {}, {}
+        days = np.concatenate([self.grid, np.asarray(self.horizons, dtype=float)])
+        for g in (0, 1):
+            m = self.a == g
+            t, cif, _ = aalen_johansen(self.time[m], self.status[m], w[m])
+            vals = step_at(t, cif, days, 0.0)
+            curves[g] = vals[: self.grid.size]
+            risk[g] = dict(zip(self.horizons, vals[self.grid.size:], strict=True))
+        return curves, risk
+
+
+def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict]]:
+    """Point estimates for one time-to-event outcome: ``(rows, curve_rows)``.
+
+    ``rows`` hold the ``estimates.csv`` columns except ``se``, ``ci_low``, ``ci_high``;
+    ``curve_rows`` the ``curves.csv`` columns except ``ci_low``, ``ci_high``, on the days
+    0, P, 2P, …, ``follow_up.max_days`` (P = ``analysis.period_days``). Time is
+    ``end_day__<outcome>``; the status comes from ``end_reason__<outcome>``. Frequency weights
+    (``sample.freq``) multiply every weight and count. ``n`` and ``events`` are frequency-weighted
+    counts of persons and of outcome events (by the horizon, or over follow-up for hazard ratios
+    and rates).
+    """
+    c = _Context(sample, outcome)
+    an = c.protocol.analysis
+    methods = [m for m in an.methods if m != "unadjusted"]
+    rows: list[dict] = []
+    curve_rows: list[dict] = []
+
+    # unadjusted: computed once, estimand empty
+    curves, risk = c.aj_curves(c.f)
+    rows += c.contrast_rows(None, "unadjusted", risk)
+    curve_rows += c.curve_rows(None, "unadjusted", curves)
+    if an.hazard_ratio:
+        rows.append(c.hazard_ratio_row(None, "unadjusted", None))
+    for g in (1, 0):
+        m = c.a == g
+        r = crude_rate(c.time[m], c.status[m], c.f[m])
+        rows.append(_row(outcome, None, "unadjusted", "rate", None, c.arms[g], None, r["rate"],
+                         r["n"], r["events"]))
+
+    need_models = "standardization" in methods or "doubly_robust" in methods
+    models = (hazard_models(c.time, c.status, c.a, c.X, c.f, c.P, c.K, c.competing,
+                            censoring=an.censoring_weights)
+              if need_models or ("ipw" in methods and an.censoring_weights) else None)
+    incidence = gformula_incidence(models, c.X) if need_models else None
+    cens = None
+    if "doubly_robust" in methods or ("ipw" in methods and an.censoring_weights):
+        cens = censoring_at(c.time, c.status, c.a, c.f, c.horizons, c.P,
+                            models.get("censoring") if models and an.censoring_weights else None,
+                            c.X)
+
+    for est in c.protocol.estimands:
+        if est not in c.weights:
+            raise SurvivalError(f"analysis sample: no weights for estimand {est!r}")
+        w = c.f * np.asarray(c.weights[est], dtype=float)
+        if "ipw" in methods:
+            if an.censoring_weights:
+                curves, risk = ipcw_incidence(c.time, c.status, c.a, w, cens, c.grid,
+                                              c.horizons)
+            else:
+                curves, risk = c.aj_curves(w)
+            rows += c.contrast_rows(est, "ipw", risk)
+            curve_rows += c.curve_rows(est, "ipw", curves)
+            if an.hazard_ratio:
+                rows.append(c.hazard_ratio_row(est, "ipw", np.asarray(c.weights[est], float)))
+        if need_models:
+            v = target_weights(est, c.a, c.e, c.f)
+            curves, risk = standardized_risks(incidence, v, c.grid, c.horizons, c.P, c.max_days)
+            if "standardization" in methods:
+                rows += c.contrast_rows(est, "standardization", risk)
+                curve_rows += c.curve_rows(est, "standardization", curves)
+            if "doubly_robust" in methods:
+                F_h = {g: at_days(incidence[g], c.horizons, c.P, c.max_days) for g in (0, 1)}
+                risk = aipw_risk(c.time, c.status, c.a, w, v, F_h, cens, c.horizons)
+                rows += c.contrast_rows(est, "doubly_robust", risk)
+    return rows, curve_rows

@@ -1,0 +1,247 @@
+"""The protocol: the target trial and its emulation, parsed once into frozen typed objects.
+
+The typed objects and the closed vocabularies live here; :mod:`emulant.protocol.reader` reads the
+YAML file (CONTRACTS §3), fills every default, validates every key and returns a :class:`Protocol`. Every problem is collected before anything is raised, so
+`ProtocolError.problems` lists them all, each naming its key path and what was expected.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from emulant.errors import EmulantError
+
+SUMMARIES = ("any", "count", "last", "mean", "min", "max", "distinct_codes")
+VALUE_SUMMARIES = ("last", "mean", "min", "max")  # need a numeric `value`; missing when no record
+KINDS = ("continuous", "binary", "categorical")
+BUILTINS = ("age", "sex", "calendar_year")
+ESTIMANDS = ("ATE", "ATT", "ATO")
+CONTRASTS = ("intention_to_treat",)
+METHODS = ("unadjusted", "ipw", "standardization", "doubly_robust")
+DEATH = "death"
+
+
+class ProtocolError(EmulantError):
+    """Raised with every problem found; ``problems`` is a list of one-line messages."""
+
+    def __init__(self, problems: list[str], path: str | Path | None = None):
+        self.problems = list(problems)
+        self.path = str(path) if path is not None else None
+        head = f"{self.path}: " if self.path else ""
+        super().__init__(head + f"{len(self.problems)} problem(s):\n  - " + "\n  - ".join(self.problems))
+
+
+# ----------------------------------------------------------------------------- typed objects
+
+
+@dataclass(frozen=True)
+class Concept:
+    name: str
+    source: str  # an extract table; 'deaths' for the built-in concept 'death'
+    codes: tuple[str, ...]  # empty for 'death'
+    match: str = "prefix"  # prefix | exact
+    where: tuple[tuple[str, tuple[str, ...]], ...] = ()  # (column, allowed values)
+    descriptions: tuple[tuple[str, str], ...] = ()  # (code, description) from a CSV code list
+    codes_file: str | None = None  # the code-list file as written, when one was given
+
+
+@dataclass(frozen=True)
+class Criterion:
+    concept: str
+    window: tuple[int, int]  # days relative to time zero, both ends included
+
+
+@dataclass(frozen=True)
+class Eligibility:
+    entry_start: dt.date
+    entry_end: dt.date
+    age_min: int | None = None
+    age_max: int | None = None
+    coverage_before_days: int = 365
+    require: tuple[Criterion, ...] = ()
+    exclude: tuple[Criterion, ...] = ()
+
+
+@dataclass(frozen=True)
+class Arm:
+    name: str
+    initiate: str  # concept name
+
+
+@dataclass(frozen=True)
+class Strategies:
+    arms: tuple[Arm, ...]  # in the protocol's order; exactly two
+    treated: str
+    washout_days: int = 365
+    same_day: str = "exclude"  # exclude | first_listed
+
+    @property
+    def comparator(self) -> str:
+        return next(a.name for a in self.arms if a.name != self.treated)
+
+    @property
+    def arm_names(self) -> tuple[str, ...]:
+        return tuple(a.name for a in self.arms)
+
+
+@dataclass(frozen=True)
+class FollowUp:
+    max_days: int = 1095
+    administrative_end: dt.date | None = None
+
+
+@dataclass(frozen=True)
+class MeasuredOutcome:
+    measure: str  # concept name (source measurements, numeric value)
+    at_day: int
+    tolerance_days: int = 30
+    change_from_baseline: bool = False
+    missing: str = "censor"  # censor | complete_case
+
+    @property
+    def name(self) -> str:
+        return self.measure
+
+
+@dataclass(frozen=True)
+class Outcomes:
+    primary: str | MeasuredOutcome
+    competing: tuple[str, ...] = ()
+    secondary: tuple[str | MeasuredOutcome, ...] = ()
+    negative_controls: tuple[str, ...] = ()
+
+    def all(self) -> tuple[str | MeasuredOutcome, ...]:
+        """Primary, secondary, negative controls, in that order."""
+        return (self.primary, *self.secondary, *self.negative_controls)
+
+    def time_to_event(self) -> tuple[str, ...]:
+        return tuple(o for o in self.all() if isinstance(o, str))
+
+    def measured(self) -> tuple[MeasuredOutcome, ...]:
+        return tuple(o for o in self.all() if isinstance(o, MeasuredOutcome))
+
+    def role(self, name: str) -> str:
+        if name == outcome_name(self.primary):
+            return "primary"
+        if name in self.negative_controls:
+            return "negative_control"
+        return "secondary"
+
+
+def outcome_name(outcome: str | MeasuredOutcome) -> str:
+    return outcome if isinstance(outcome, str) else outcome.measure
+
+
+@dataclass(frozen=True)
+class Covariate:
+    name: str
+    builtin: str | None = None  # age | sex | calendar_year
+    attribute: str | None = None  # a column of persons
+    concept: str | None = None
+    source: str | None = None  # a whole extract source (e.g. dispensings)
+    window: tuple[int, int] | None = None
+    summary: str | None = None  # any | count | last | mean | min | max | distinct_codes
+    kind: str | None = None  # continuous | binary | categorical; None = decided from the data
+    missing: str = "indicator"  # indicator | exclude
+
+    @property
+    def may_be_missing(self) -> bool:
+        """True when the value can be missing, so a ``<name>_missing`` column exists."""
+        return self.attribute is not None or self.summary in VALUE_SUMMARIES
+
+
+@dataclass(frozen=True)
+class Propensity:
+    model: str = "logistic"
+    continuous: str = "spline"  # spline | quadratic | linear
+
+
+@dataclass(frozen=True)
+class WeightSettings:
+    stabilize: bool = True
+    truncate: tuple[float, float] | None = None
+
+
+@dataclass(frozen=True)
+class Bootstrap:
+    replicates: int = 200
+    seed: int = 20261201
+    interval: str = "wald"  # wald | percentile
+
+
+@dataclass(frozen=True)
+class Analysis:
+    propensity: Propensity = Propensity()
+    weights: WeightSettings = WeightSettings()
+    horizons_days: tuple[int, ...] = (365, 730, 1095)
+    methods: tuple[str, ...] = ("ipw", "standardization", "doubly_robust")
+    hazard_ratio: bool = True
+    period_days: int = 30
+    censoring_weights: bool = False
+    bootstrap: Bootstrap = Bootstrap()
+    smd_threshold: float = 0.1
+
+
+@dataclass(frozen=True)
+class ReportSettings:
+    min_cell: int = 5
+
+
+@dataclass(frozen=True)
+class Study:
+    id: str
+    title: str = ""
+    question: str = ""
+    target_trial: tuple[tuple[str, str], ...] = ()  # (component, free text)
+
+
+@dataclass(frozen=True)
+class Protocol:
+    study: Study
+    concepts: Mapping[str, Concept]
+    eligibility: Eligibility
+    strategies: Strategies
+    follow_up: FollowUp
+    outcomes: Outcomes
+    covariates: tuple[Covariate, ...]
+    estimands: tuple[str, ...] = ("ATE", "ATT")
+    contrasts: tuple[str, ...] = ("intention_to_treat",)
+    analysis: Analysis = Analysis()
+    report: ReportSettings = ReportSettings()
+    extract_columns: Mapping[str, Mapping[str, str]] = field(default_factory=dict)
+    path: str | None = None  # the protocol file
+    text: str = ""  # the file's text, verbatim
+    sha256: str = ""
+
+    @property
+    def base_dir(self) -> Path:
+        return Path(self.path).parent if self.path else Path.cwd()
+
+    def concept(self, name: str) -> Concept:
+        return self.concepts[name]
+
+    def sources_used(self) -> tuple[str, ...]:
+        """Extract tables the protocol reads, besides persons and coverage."""
+        names = {c.source for c in self.concepts.values()}
+        names |= {c.source for c in self.covariates if c.source}
+        return tuple(sorted(names))
+
+    def as_dict(self) -> dict[str, Any]:
+        """The protocol as parsed, defaults filled in (plain types, for the report and manifest)."""
+        d = asdict(self)
+        d.pop("text")
+        return _plain(d)
+
+
+def _plain(x: Any) -> Any:
+    if isinstance(x, dict):
+        return {k: _plain(v) for k, v in x.items()}
+    if isinstance(x, list | tuple):
+        return [_plain(v) for v in x]
+    if isinstance(x, dt.date):
+        return x.isoformat()
+    return x

@@ -1,0 +1,29 @@
+"""Wording the estimators and the report share: one place, so the report never imports an estimator.
+
+Each function takes the parsed protocol and returns the words the report prints beside the
+estimates the protocol's settings produce.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+
+def censoring_assumption(protocol: Any) -> str:
+    """The censoring assumption the time-to-event estimates rest on, in words for the report."""
+    if protocol.analysis.censoring_weights:
+        return ("Censoring (coverage end, administrative end, end of follow-up) is assumed "
+                "non-informative given arm, time and the covariates: inverse probability of "
+                "censoring weights from a pooled logistic model of censoring (period "
+                f"{protocol.analysis.period_days} days) are used in the IPW curves and the "
+                "doubly robust risks.")
+    return ("Censoring (coverage end, administrative end, end of follow-up) is assumed "
+            "non-informative within each arm: the weighted Aalen–Johansen/Kaplan–Meier curves "
+            "keep censored persons in the risk set until they leave, and the doubly robust risks "
+            "use the censoring distribution estimated by Kaplan–Meier in each arm "
+            "(analysis.censoring_weights is false).")
+
+
+def hazard_ratio_label(protocol: Any) -> str:
+    """'cause-specific hazard ratio' when the protocol has competing events, else 'hazard ratio'."""
+    return "cause-specific hazard ratio" if protocol.outcomes.competing else "hazard ratio"
