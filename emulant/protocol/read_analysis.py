@@ -1,0 +1,68 @@
+"""Reading ``estimands``, ``contrasts``, ``analysis`` and ``report`` (CONTRACTS §3)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from emulant.protocol.collector import Collector
+from emulant.protocol.model import (
+    CONTRASTS,
+    ESTIMANDS,
+    METHODS,
+    Analysis,
+    Bootstrap,
+    FollowUp,
+    Propensity,
+    ReportSettings,
+    WeightSettings,
+)
+
+
+def read_estimands(c: Collector, top: dict) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """``estimands`` and ``contrasts``, with their defaults."""
+    estimands = tuple(c.choice(x, f"estimands[{i}]", ESTIMANDS, "ATE") for i, x in enumerate(c.listing(top.get("estimands"), "estimands"))) or ("ATE", "ATT")
+    contrasts = tuple(c.choice(x, f"contrasts[{i}]", CONTRASTS, "intention_to_treat") for i, x in enumerate(c.listing(top.get("contrasts"), "contrasts"))) or ("intention_to_treat",)
+    return estimands, contrasts
+
+
+def read_analysis(c: Collector, node: Any, follow: FollowUp) -> Analysis:
+    """``analysis``: propensity, weights, horizons, methods, periods, censoring weights, bootstrap, balance."""
+    a = c.mapping(node, "analysis", ("propensity", "weights", "horizons_days", "methods", "hazard_ratio", "period_days", "censoring_weights", "bootstrap", "balance"))
+    p = c.mapping(a.get("propensity"), "analysis.propensity", ("model", "continuous"))
+    w = c.mapping(a.get("weights"), "analysis.weights", ("stabilize", "truncate"))
+    trunc = w.get("truncate")
+    if trunc is not None:
+        if not (isinstance(trunc, list) and len(trunc) == 2 and all(isinstance(x, int | float) and not isinstance(x, bool) for x in trunc)
+                and 0 <= trunc[0] < trunc[1] <= 1):
+            c.add("analysis.weights.truncate", f"expected two quantiles [low, high] with 0 <= low < high <= 1, got {trunc!r}")
+            trunc = None
+        else:
+            trunc = (float(trunc[0]), float(trunc[1]))
+    horizons = tuple(c.integer(x, f"analysis.horizons_days[{i}]", 1, 1) for i, x in enumerate(c.listing(a.get("horizons_days"), "analysis.horizons_days"))) or (365, 730, 1095)
+    for h in horizons:
+        if h > follow.max_days:
+            c.add("analysis.horizons_days", f"horizon {h} is beyond follow_up.max_days ({follow.max_days})")
+    methods = tuple(m for m in (c.choice(x, f"analysis.methods[{i}]", METHODS, None) for i, x in enumerate(c.listing(a.get("methods"), "analysis.methods"))) if m and m != "unadjusted") if a.get("methods") is not None else ("ipw", "standardization", "doubly_robust")
+    b = c.mapping(a.get("bootstrap"), "analysis.bootstrap", ("replicates", "seed", "interval"))
+    bal = c.mapping(a.get("balance"), "analysis.balance", ("smd_threshold",))
+    analysis = Analysis(
+        Propensity(c.choice(p.get("model"), "analysis.propensity.model", ("logistic",), "logistic") or "logistic",
+                   c.choice(p.get("continuous"), "analysis.propensity.continuous", ("spline", "quadratic", "linear"), "spline") or "spline"),
+        WeightSettings(c.boolean(w.get("stabilize"), "analysis.weights.stabilize", True), trunc),
+        tuple(sorted(set(horizons))), methods,
+        c.boolean(a.get("hazard_ratio"), "analysis.hazard_ratio", True),
+        c.integer(a.get("period_days"), "analysis.period_days", 30, 1) or 30,
+        c.boolean(a.get("censoring_weights"), "analysis.censoring_weights", False),
+        Bootstrap(c.integer(b.get("replicates"), "analysis.bootstrap.replicates", 200, 0) or 0,
+                  c.integer(b.get("seed"), "analysis.bootstrap.seed", 20261201, 0) or 0,
+                  c.choice(b.get("interval"), "analysis.bootstrap.interval", ("wald", "percentile"), "wald") or "wald"),
+        c.number(bal.get("smd_threshold"), "analysis.balance.smd_threshold", 0.1),
+    )
+    return analysis
+
+
+def read_report(c: Collector, node: Any) -> ReportSettings:
+    """``report``: the smallest count shown."""
+    r = c.mapping(node, "report", ("min_cell",))
+    report = ReportSettings(c.integer(r.get("min_cell"), "report.min_cell", 5, 1) or 5)
+    return report

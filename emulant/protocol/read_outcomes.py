@@ -1,0 +1,111 @@
+"""Reading ``outcomes`` and ``covariates`` (CONTRACTS §3, §3a)."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+from emulant.protocol.collector import NAME_PATTERN, Collector
+from emulant.protocol.model import (
+    BUILTINS,
+    KINDS,
+    SUMMARIES,
+    VALUE_SUMMARIES,
+    Concept,
+    Covariate,
+    FollowUp,
+    MeasuredOutcome,
+    Outcomes,
+    outcome_name,
+)
+from emulant.protocol.read_concepts import need_concept
+
+
+def read_measured(c: Collector, d: Any, key: str, concepts) -> MeasuredOutcome:
+    d = c.mapping(d, key, ("measure", "at_day", "tolerance_days", "change_from_baseline", "missing"), ("measure", "at_day"))
+    m = need_concept(c, concepts, d.get("measure"), f"{key}.measure") if d.get("measure") else ""
+    if m in concepts and concepts[m].source != "measurements":
+        c.add(f"{key}.measure", f"concept '{m}' has source '{concepts[m].source}'; a measured outcome needs source measurements")
+    return MeasuredOutcome(
+        measure=m,
+        at_day=c.integer(d.get("at_day"), f"{key}.at_day", 0, 1) or 0,
+        tolerance_days=c.integer(d.get("tolerance_days"), f"{key}.tolerance_days", 30, 0) or 0,
+        change_from_baseline=c.boolean(d.get("change_from_baseline"), f"{key}.change_from_baseline", False),
+        missing=c.choice(d.get("missing"), f"{key}.missing", ("censor", "complete_case"), "censor") or "censor",
+    )
+
+
+def read_outcome(c: Collector, node: Any, key: str, concepts) -> str | MeasuredOutcome:
+    if isinstance(node, dict):
+        return read_measured(c, node, key, concepts)
+    return need_concept(c, concepts, node, key)
+
+
+def read_covariates(c: Collector, node: Any, concepts) -> tuple[Covariate, ...]:
+    out = []
+    seen: set[str] = set()
+    known = ("name", "builtin", "attribute", "concept", "source", "window", "summary", "kind", "missing")
+    for i, item in enumerate(c.listing(node, "covariates")):
+        k = f"covariates[{i}]"
+        d = c.mapping(item, k, known, required=("name",))
+        name = c.text(d.get("name"), f"{k}.name")
+        if name and not NAME_PATTERN.match(name):
+            c.add(f"{k}.name", "a covariate name must be letters, digits and underscores, starting with a letter")
+        if name in seen:
+            c.add(f"{k}.name", f"covariate '{name}' is listed twice")
+        seen.add(name)
+        k = f"covariates[{i}] ({name})"
+        kinds = [x for x in ("builtin", "attribute", "concept", "source") if d.get(x) is not None]
+        if len(kinds) != 1:
+            c.add(k, f"give exactly one of builtin, attribute, concept, source (got {', '.join(kinds) or 'none'})")
+        builtin = c.choice(d.get("builtin"), f"{k}.builtin", BUILTINS, None)
+        concept = need_concept(c, concepts, d["concept"], f"{k}.concept") if d.get("concept") is not None else None
+        source = c.text(d.get("source"), f"{k}.source") if d.get("source") is not None else None
+        window = c.window(d.get("window"), f"{k}.window")
+        summary = c.choice(d.get("summary"), f"{k}.summary", SUMMARIES, None)
+        if concept is not None or source is not None:
+            if window is None:
+                c.add(f"{k}.window", "a concept or source covariate needs a window [a, b]")
+            if summary is None:
+                summary = "any"
+        elif window is not None or summary is not None:
+            c.add(k, "window and summary apply only to a concept or source covariate")
+        if source is not None and summary in VALUE_SUMMARIES and source != "measurements":
+            c.add(f"{k}.summary", f"summary '{summary}' needs numeric values (source measurements)")
+        if concept in concepts and summary in VALUE_SUMMARIES and concepts[concept].source != "measurements":
+            c.add(f"{k}.summary", f"summary '{summary}' needs numeric values; concept '{concept}' has source '{concepts[concept].source}'")
+        kind = c.choice(d.get("kind"), f"{k}.kind", KINDS, None)
+        if kind is None:
+            if builtin == "sex":
+                kind = "categorical"
+            elif builtin in ("age", "calendar_year"):
+                kind = "continuous"
+            elif summary == "any":
+                kind = "binary"
+            elif summary is not None:
+                kind = "continuous"
+        missing = c.choice(d.get("missing"), f"{k}.missing", ("indicator", "exclude"), "indicator")
+        attribute = c.text(d.get("attribute"), f"{k}.attribute") if d.get("attribute") is not None else None
+        out.append(Covariate(name, builtin, attribute, concept, source, window, summary, kind, missing or "indicator"))
+    return tuple(out)
+
+
+def read_outcomes(c: Collector, node: Any, concepts: Mapping[str, Concept], follow: FollowUp) -> Outcomes:
+    """``outcomes``: primary, competing, secondary and negative-control outcomes."""
+    o = c.mapping(node, "outcomes", ("primary", "competing", "secondary", "negative_controls"), required=("primary",))
+    outcomes = Outcomes(
+        primary=read_outcome(c, o.get("primary"), "outcomes.primary", concepts) if o.get("primary") is not None else "",
+        competing=tuple(need_concept(c, concepts, x, f"outcomes.competing[{i}]") for i, x in enumerate(c.listing(o.get("competing"), "outcomes.competing"))),
+        secondary=tuple(read_outcome(c, x, f"outcomes.secondary[{i}]", concepts) for i, x in enumerate(c.listing(o.get("secondary"), "outcomes.secondary"))),
+        negative_controls=tuple(need_concept(c, concepts, x, f"outcomes.negative_controls[{i}]") for i, x in enumerate(c.listing(o.get("negative_controls"), "outcomes.negative_controls"))),
+    )
+    if len(outcomes.competing) > 1:
+        c.add("outcomes.competing", "at most one competing event is supported; combine them into one concept")
+    names = [outcome_name(x) for x in outcomes.all()]
+    dupes = sorted({n for n in names if names.count(n) > 1})
+    if dupes:
+        c.add("outcomes", f"outcome(s) listed twice: {', '.join(dupes)}")
+    for m in outcomes.measured():
+        if m.at_day + m.tolerance_days > follow.max_days:
+            c.add("outcomes", f"measured outcome '{m.measure}' needs max_days >= at_day + tolerance_days = {m.at_day + m.tolerance_days} (follow_up.max_days is {follow.max_days})")
+    return outcomes
