@@ -20,7 +20,7 @@ VALUE_SUMMARIES = ("last", "mean", "min", "max")  # need a numeric `value`; miss
 KINDS = ("continuous", "binary", "categorical")
 BUILTINS = ("age", "sex", "calendar_year")
 ESTIMANDS = ("ATE", "ATT", "ATO")
-CONTRASTS = ("intention_to_treat",)
+CONTRASTS = ("intention_to_treat", "per_protocol")
 METHODS = ("unadjusted", "ipw", "standardization", "doubly_robust")
 DEATH = "death"
 
@@ -67,9 +67,19 @@ class Eligibility:
 
 
 @dataclass(frozen=True)
+class Sustain:
+    """Staying on a strategy (CONTRACTS §5b): the largest gap in supply, the concepts that
+    count as a switch (default: the other arms' initiating concepts, filled at parse time)."""
+
+    gap_days: int
+    switch: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
 class Arm:
     name: str
     initiate: str  # concept name
+    sustain: Sustain | None = None  # None: the arm has no adherence rule (intention to treat only)
 
 
 @dataclass(frozen=True)
@@ -208,6 +218,7 @@ class Protocol:
     follow_up: FollowUp
     outcomes: Outcomes
     covariates: tuple[Covariate, ...]
+    time_varying: tuple[Covariate, ...] = ()  # re-measured on the first day of every period (§5a)
     estimands: tuple[str, ...] = ("ATE", "ATT")
     contrasts: tuple[str, ...] = ("intention_to_treat",)
     analysis: Analysis = Analysis()
@@ -227,8 +238,13 @@ class Protocol:
     def sources_used(self) -> tuple[str, ...]:
         """Extract tables the protocol reads, besides persons and coverage."""
         names = {c.source for c in self.concepts.values()}
-        names |= {c.source for c in self.covariates if c.source}
+        names |= {c.source for c in (*self.covariates, *self.time_varying) if c.source}
         return tuple(sorted(names))
+
+    @property
+    def per_protocol(self) -> bool:
+        """True when the protocol asks for the per-protocol contrast (person-time is needed)."""
+        return "per_protocol" in self.contrasts
 
     def as_dict(self) -> dict[str, Any]:
         """The protocol as parsed, defaults filled in (plain types, for the report and manifest)."""

@@ -14,14 +14,24 @@ from emulant.protocol.model import (
     FollowUp,
     Propensity,
     ReportSettings,
+    Strategies,
     WeightSettings,
 )
 
 
-def read_estimands(c: Collector, top: dict) -> tuple[tuple[str, ...], tuple[str, ...]]:
-    """``estimands`` and ``contrasts``, with their defaults."""
+def read_estimands(c: Collector, top: dict, strategies: Strategies | None = None) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """``estimands`` and ``contrasts``, with their defaults; ``per_protocol`` needs ``sustain``
+    on every arm (CONTRACTS §5b)."""
     estimands = tuple(c.choice(x, f"estimands[{i}]", ESTIMANDS, "ATE") for i, x in enumerate(c.listing(top.get("estimands"), "estimands"))) or ("ATE", "ATT")
     contrasts = tuple(c.choice(x, f"contrasts[{i}]", CONTRASTS, "intention_to_treat") for i, x in enumerate(c.listing(top.get("contrasts"), "contrasts"))) or ("intention_to_treat",)
+    if len(set(contrasts)) < len(contrasts):
+        c.add("contrasts", f"a contrast is listed twice: {', '.join(contrasts)}")
+        contrasts = tuple(dict.fromkeys(contrasts))
+    if "per_protocol" in contrasts and strategies is not None:
+        for a in strategies.arms:
+            if a.sustain is None:
+                c.add(f"strategies.arms.{a.name}", "contrast per_protocol needs sustain: {gap_days: N} "
+                      f"on every arm; arm '{a.name}' has none (what staying on it means)")
     return estimands, contrasts
 
 

@@ -1,4 +1,4 @@
-"""Reading ``outcomes`` and ``covariates`` (CONTRACTS §3, §3a)."""
+"""Reading ``outcomes``, ``covariates`` and ``time_varying`` (CONTRACTS §3, §3a, §5a)."""
 
 from __future__ import annotations
 
@@ -41,23 +41,30 @@ def read_outcome(c: Collector, node: Any, key: str, concepts) -> str | MeasuredO
     return need_concept(c, concepts, node, key)
 
 
-def read_covariates(c: Collector, node: Any, concepts) -> tuple[Covariate, ...]:
+def read_covariates(c: Collector, node: Any, concepts, section: str = "covariates",
+                    taken: tuple[str, ...] = ()) -> tuple[Covariate, ...]:
+    """``covariates`` (baseline) or, with ``section="time_varying"``, the covariates re-measured
+    on the first day of every period (§5a): a concept or source only, a window ending on or
+    before day 0, ``missing: indicator`` only; ``taken`` are names already used."""
     out = []
-    seen: set[str] = set()
-    known = ("name", "builtin", "attribute", "concept", "source", "window", "summary", "kind", "missing")
-    for i, item in enumerate(c.listing(node, "covariates")):
-        k = f"covariates[{i}]"
+    seen: set[str] = set(taken)
+    tv = section == "time_varying"
+    known = ("name", "concept", "source", "window", "summary", "kind", "missing") if tv else \
+        ("name", "builtin", "attribute", "concept", "source", "window", "summary", "kind", "missing")
+    for i, item in enumerate(c.listing(node, section)):
+        k = f"{section}[{i}]"
         d = c.mapping(item, k, known, required=("name",))
         name = c.text(d.get("name"), f"{k}.name")
         if name and not NAME_PATTERN.match(name):
             c.add(f"{k}.name", "a covariate name must be letters, digits and underscores, starting with a letter")
         if name in seen:
-            c.add(f"{k}.name", f"covariate '{name}' is listed twice")
+            c.add(f"{k}.name", f"covariate '{name}' is listed twice" + (" (a baseline covariate has this name)" if name in taken else ""))
         seen.add(name)
-        k = f"covariates[{i}] ({name})"
-        kinds = [x for x in ("builtin", "attribute", "concept", "source") if d.get(x) is not None]
+        k = f"{section}[{i}] ({name})"
+        sources = ("concept", "source") if tv else ("builtin", "attribute", "concept", "source")
+        kinds = [x for x in sources if d.get(x) is not None]
         if len(kinds) != 1:
-            c.add(k, f"give exactly one of builtin, attribute, concept, source (got {', '.join(kinds) or 'none'})")
+            c.add(k, f"give exactly one of {', '.join(sources)} (got {', '.join(kinds) or 'none'})")
         builtin = c.choice(d.get("builtin"), f"{k}.builtin", BUILTINS, None)
         concept = need_concept(c, concepts, d["concept"], f"{k}.concept") if d.get("concept") is not None else None
         source = c.text(d.get("source"), f"{k}.source") if d.get("source") is not None else None
@@ -84,7 +91,9 @@ def read_covariates(c: Collector, node: Any, concepts) -> tuple[Covariate, ...]:
                 kind = "binary"
             elif summary is not None:
                 kind = "continuous"
-        missing = c.choice(d.get("missing"), f"{k}.missing", ("indicator", "exclude"), "indicator")
+        if tv and window is not None and window[1] > 0:
+            c.add(f"{k}.window", f"a window must end on or before day 0 (the period's first day), got {list(window)}: a record after the day it describes would let the future decide the past")
+        missing = c.choice(d.get("missing"), f"{k}.missing", ("indicator",) if tv else ("indicator", "exclude"), "indicator")
         attribute = c.text(d.get("attribute"), f"{k}.attribute") if d.get("attribute") is not None else None
         out.append(Covariate(name, builtin, attribute, concept, source, window, summary, kind, missing or "indicator"))
     return tuple(out)

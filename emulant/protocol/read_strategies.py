@@ -1,4 +1,4 @@
-"""Reading ``strategies`` and ``follow_up`` (CONTRACTS §3, §3a)."""
+"""Reading ``strategies`` and ``follow_up`` (CONTRACTS §3, §3a, §5b)."""
 
 from __future__ import annotations
 
@@ -6,23 +6,26 @@ from collections.abc import Mapping
 from typing import Any
 
 from emulant.protocol.collector import NAME_PATTERN, Collector
-from emulant.protocol.model import Arm, Concept, FollowUp, Strategies
+from emulant.protocol.model import Arm, Concept, FollowUp, Strategies, Sustain
 from emulant.protocol.read_concepts import need_concept
 
 
 def read_strategies(c: Collector, node: Any, concepts: Mapping[str, Concept]) -> Strategies:
     """``strategies``: the arms, the treated arm, the washout and the same-day rule."""
     st = c.mapping(node, "strategies", ("arms", "treated", "washout_days", "same_day"), required=("arms", "treated"))
-    arms = []
     arm_node = st.get("arms") or {}
     if not isinstance(arm_node, dict):
         c.add("strategies.arms", "expected a mapping of arm names")
         arm_node = {}
+    specs = {}
     for name, spec in arm_node.items():
-        d = c.mapping(spec, f"strategies.arms.{name}", ("initiate",), required=("initiate",))
+        specs[str(name)] = c.mapping(spec, f"strategies.arms.{name}", ("initiate", "sustain"), required=("initiate",))
         if not NAME_PATTERN.match(str(name)):
             c.add(f"strategies.arms.{name}", "an arm name must be letters, digits and underscores")
-        arms.append(Arm(str(name), need_concept(c, concepts, d.get("initiate"), f"strategies.arms.{name}.initiate") if d.get("initiate") else ""))
+    starts = [Arm(str(n), need_concept(c, concepts, d.get("initiate"), f"strategies.arms.{n}.initiate") if d.get("initiate") else "")
+              for n, d in specs.items()]
+    arms = [Arm(a.name, a.initiate, read_sustain(c, specs[a.name]["sustain"], a.name, starts, concepts)
+                if specs[a.name].get("sustain") is not None else None) for a in starts]
     if len(arms) != 2 and arm_node:
         c.add("strategies.arms", f"expected exactly two arms, got {len(arms)}")
     treated = c.text(st.get("treated"), "strategies.treated")
@@ -31,6 +34,24 @@ def read_strategies(c: Collector, node: Any, concepts: Mapping[str, Concept]) ->
     strategies = Strategies(tuple(arms), treated, c.integer(st.get("washout_days"), "strategies.washout_days", 365, 0) or 0,
                             c.choice(st.get("same_day"), "strategies.same_day", ("exclude", "first_listed"), "exclude") or "exclude")
     return strategies
+
+
+def read_sustain(c: Collector, node: Any, arm: str, arms: list[Arm],
+                 concepts: Mapping[str, Concept]) -> Sustain:
+    """``strategies.arms.<arm>.sustain``: ``gap_days`` (required, >= 0) and ``switch`` (concepts;
+    default: the other arms' initiating concepts), CONTRACTS §5b."""
+    key = f"strategies.arms.{arm}.sustain"
+    d = c.mapping(node, key, ("gap_days", "switch"), required=("gap_days",))
+    gap = c.integer(d.get("gap_days"), f"{key}.gap_days", 0, 0) or 0
+    if d.get("switch") is None:
+        switch = tuple(a.initiate for a in arms if a.name != arm and a.initiate)
+    else:
+        switch = tuple(need_concept(c, concepts, x, f"{key}.switch[{i}]")
+                       for i, x in enumerate(c.listing(d.get("switch"), f"{key}.switch")))
+        own = next((a.initiate for a in arms if a.name == arm), None)
+        if own in switch:
+            c.add(f"{key}.switch", f"concept '{own}' starts this arm; it cannot also be a switch")
+    return Sustain(gap, switch)
 
 
 def read_follow_up(c: Collector, node: Any) -> FollowUp:

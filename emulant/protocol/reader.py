@@ -23,7 +23,7 @@ from emulant.protocol.read_outcomes import read_covariates, read_outcomes
 from emulant.protocol.read_strategies import read_follow_up, read_strategies
 
 TOP_KEYS = ("study", "concepts", "eligibility", "strategies", "follow_up", "outcomes", "covariates",
-            "estimands", "contrasts", "analysis", "report", "extract_columns")
+            "time_varying", "estimands", "contrasts", "analysis", "report", "extract_columns")
 TRIAL_COMPONENTS = ("eligibility", "strategies", "assignment", "time_zero", "follow_up", "outcome", "contrast", "analysis")
 
 
@@ -50,7 +50,9 @@ def read_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | None
     outcomes = read_outcomes(c, top.get("outcomes"), concepts, follow)
 
     covariates = read_covariates(c, top.get("covariates"), concepts)
-    estimands, contrasts = read_estimands(c, top)
+    time_varying = read_covariates(c, top.get("time_varying"), concepts, "time_varying",
+                                   tuple(x.name for x in covariates))
+    estimands, contrasts = read_estimands(c, top, strategies)
 
     analysis = read_analysis(c, top.get("analysis"), follow)
     report = read_report(c, top.get("report"))
@@ -66,7 +68,7 @@ def read_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | None
 
     if c.problems:
         raise ProtocolError(c.problems, path)
-    return Protocol(study, concepts, elig, strategies, follow, outcomes, covariates, estimands, contrasts,
+    return Protocol(study, concepts, elig, strategies, follow, outcomes, covariates, time_varying, estimands, contrasts,
                     analysis, report, extract_columns, str(path) if path else None, text,
                     hashlib.sha256(text.encode()).hexdigest() if text else "")
 
