@@ -50,3 +50,10 @@ def extract_files(extract_dir: str, synthetic: bool) -> list[str]:
     if not files:
         _fail(f"config key 'extract': folder {extract_dir} holds no NAME.parquet, NAME.csv or NAME.csv.gz table")
     return [str(f) for f in files.values()]
+
+
+def bootstrap_chunks(protocol: Protocol, chunks: int | str | None) -> list[str]:
+    """The bootstrap chunk files' names (config key ``bootstrap_chunks``: a number or 'auto')."""
+    from emulant.estimation.chunks import chunk_name, chunk_ranges
+
+    return [chunk_name(r) for r in chunk_ranges(protocol.analysis.bootstrap.replicates, chunks)]

@@ -124,12 +124,44 @@ def check_balance(input: Any, output: Any, params: Any) -> None:
     write_csv(output.balance, table)
 
 
-def estimate_effects(input: Any, output: Any, params: Any) -> None:
-    from emulant.estimation.effects import estimate_effects as estimate
+def estimate_point(input: Any, output: Any, params: Any) -> None:
+    from emulant.estimation.chunks import point_to_json
+    from emulant.estimation.effects import point_estimate
 
     protocol = load_protocol(_protocol_path(input))
-    res = estimate(pd.read_parquet(input.cohort), protocol, workers=int(params.workers),
-                   progress=sys.stderr.isatty())
+    point = point_estimate(pd.read_parquet(input.cohort), protocol)
+    with atomic(output.point) as tmp:
+        tmp.write_text(point_to_json(point), encoding="utf-8")
+
+
+def bootstrap_chunk(input: Any, output: Any, params: Any) -> None:
+    from emulant.estimation.chunks import read_point, write_run
+    from emulant.estimation.effects import bootstrap_replicates
+
+    protocol = load_protocol(_protocol_path(input))
+    only = range(int(params.first), int(params.last) + 1)
+    run = bootstrap_replicates(pd.read_parquet(input.cohort), protocol, read_point(input.point),
+                               only, workers=int(params.workers), progress=sys.stderr.isatty())
+    log.info("replicates %d-%d: %d completed, %d failed in %.1f s on %d worker(s)", only.start,
+             only.stop - 1, run.completed, run.failed, run.seconds, run.workers)
+    with atomic(output.chunk) as tmp, open(tmp, "wb") as fh:
+        write_run(fh, run)
+
+
+def estimate_effects(input: Any, output: Any, params: Any) -> None:
+    from emulant.estimation.chunks import read_point, read_run
+    from emulant.estimation.effects import gather_effects
+
+    protocol = load_protocol(_protocol_path(input))
+    chunk_files = [input.chunks] if isinstance(input.chunks, str | Path) else list(input.chunks)
+    runs = [read_run(f) for f in chunk_files]
+    for f, run in zip(chunk_files, runs, strict=True):
+        log.info("%s: %d completed, %d failed", Path(f).name, run.completed, run.failed)
+    res = gather_effects(read_point(input.point), runs, protocol)
+    b = res.bootstrap
+    log.info("bootstrap: %d of %d replicates completed, %d failed, across %d chunk(s)%s",
+             b["completed"], b["requested"], b["failed"], len(runs),
+             "".join(f"; {k}: {v}" for k, v in b["failure_reasons"].items()))
     write_csv(output.estimates, res.estimates)
     write_csv(output.curves, res.curves)
     write_json(output.bootstrap, res.bootstrap)

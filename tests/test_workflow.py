@@ -82,7 +82,7 @@ def test_unchanged_rerun_has_nothing_to_do(workdir):
 def test_forced_rerun_archives_identical_estimates(workdir):
     reports = workdir / "reports" / _study(workdir)
     before = {p.name for p in reports.iterdir() if p.is_dir()}
-    run = snakemake(workdir, "--forcerun", "estimate_effects")
+    run = snakemake(workdir, "--forcerun", "estimate_point")
     assert run.returncode == 0, run.stderr[-4000:]
     folders = sorted(p for p in reports.iterdir() if p.is_dir() and p.name not in before)
     assert len(folders) == 1
@@ -115,3 +115,23 @@ def test_design_report_holds_no_outcome(workdir):
         assert word not in html, word
     archived = json.loads((res / "design_archive.json").read_text())
     assert archived["kind"] == "design"
+
+
+def test_changing_only_the_chunking_reruns_only_the_bootstrap(workdir):
+    # The 4 replicates as 1 chunk (the fixture's default: auto) and then as 3 jobs: only the
+    # chunk jobs and the gather step run, and the gathered files are identical byte for byte.
+    res = workdir / "results" / _study(workdir)
+    names = ("estimates.csv", "curves.csv", "bootstrap.json")
+    before = {n: (res / n).read_bytes() for n in names}
+    dry = snakemake(workdir, "-n", "--config", "bootstrap_chunks=3")
+    jobs = set(re.findall(r"^rule (\w+):", dry.stdout, flags=re.M))
+    assert jobs == {"bootstrap_chunk", "estimate_effects"}, dry.stdout[-3000:]
+    run = snakemake(workdir, "--config", "bootstrap_chunks=3", "--cores", "1")
+    assert run.returncode == 0, run.stderr[-4000:]
+    assert {n: (res / n).read_bytes() for n in names} == before
+    logs = sorted(p.name for p in (res / "logs").glob("bootstrap_*.log"))
+    assert {"bootstrap_000-000.log", "bootstrap_001-001.log", "bootstrap_002-003.log"} <= set(logs)
+    chunk_log = (res / "logs" / "bootstrap_002-003.log").read_text()
+    assert "bootstrap replicates 2-3 of 0-3: 1/2 (50%)" in chunk_log and "left" in chunk_log
+    gather_log = (res / "logs" / "estimate_effects.log").read_text()
+    assert "4 of 4 replicates completed, 0 failed, across 3 chunk(s)" in gather_log

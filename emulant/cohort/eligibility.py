@@ -42,6 +42,7 @@ from emulant.cohort.covariates import (
     zero_when_none,
 )
 from emulant.extract import Extract
+from emulant.progress import Progress
 from emulant.protocol import Protocol
 
 
@@ -349,16 +350,25 @@ def build_cohort(extract: Extract, protocol: Protocol, steps_only: bool = False)
     not available", Am J Epidemiol 2016;183:758-764, with the exact day rules of §3a.
     """
     con, p = extract.con, protocol
+    done = Progress("cohort (time zero, coverage, code windows, eligibility, attrition, table)", 6)
     try:
         _make_init(con, extract, p)
+        done.step()
         _make_coverage(con)
+        done.step()
         pl = Planner(extract, p)
         steps = _plan_steps(pl, p, steps_only)
         tables = make_aggregates(con, extract, pl.plans)
+        done.step()
         _select_all(con, p, pl, tables, steps)
+        done.step()
         att, by_arm = _attrition(con, p, steps)
         _check_not_empty(att, by_arm, p.strategies.arm_names)
-        return CohortResult(att, None if steps_only else _cohort_frame(con, p))
+        done.step()
+        result = CohortResult(att, None if steps_only else _cohort_frame(con, p))
+        done.step()
+        done.close()
+        return result
     except duckdb.OutOfMemoryException as exc:
         limit = con.execute("SELECT current_setting('memory_limit')").fetchone()[0]
         raise CohortError(f"DuckDB ran out of memory building the cohort of {extract.path} "

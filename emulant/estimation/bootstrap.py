@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import math
 import os
-import sys
 import time
 import warnings
 from collections import Counter
@@ -33,6 +32,7 @@ from typing import Any
 import numpy as np
 
 from emulant.errors import EmulantError, NonConvergenceWarning, ReplicateFailure
+from emulant.progress import Progress
 
 ROW_KEY = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
            "comparator")
@@ -139,66 +139,50 @@ def _replicate(r: int) -> tuple[int, np.ndarray | None, np.ndarray | None, str |
     return r, vals, cvals, None
 
 
-# ----------------------------------------------------------------------------- progress
-
-
-class _Progress:
-    """A plain-text bar on stderr when it is a terminal, or a callback ``f(done, total)``."""
-
-    def __init__(self, total: int, progress: bool | Callable | None):
-        self.total = total
-        self.fn = progress if callable(progress) else None
-        self.bar = progress is True or (progress is None and sys.stderr.isatty())
-        self.start = time.monotonic()
-
-    def update(self, done: int, failed: int) -> None:
-        if self.fn is not None:
-            self.fn(done, self.total)
-        if self.bar and self.total:
-            width = 30
-            full = int(width * done / self.total)
-            secs = time.monotonic() - self.start
-            sys.stderr.write(f"\rbootstrap [{'#' * full}{'.' * (width - full)}] {done}/{self.total}"
-                             f" replicates, {failed} failed, {secs:.0f} s")
-            sys.stderr.flush()
-
-    def close(self) -> None:
-        if self.bar and self.total:
-            sys.stderr.write("\n")
-            sys.stderr.flush()
-
-
 # ----------------------------------------------------------------------------- the run
 
 
 @dataclass
 class BootstrapRun:
-    """Replicate estimates (completed replicates only, in replicate order) and their account."""
+    """Replicate estimates (completed replicates only, in replicate order) and their account.
+
+    A run may cover only some of the ``requested`` replicates (one chunk of them); chunks are
+    put together by :func:`emulant.estimation.chunks.combine_runs`.
+    """
 
     requested: int
     seed: int
     interval: str
-    workers: int
-    start_method: str
     row_reps: np.ndarray  # completed x rows
     curve_reps: np.ndarray  # completed x curve rows
-    reasons: dict[str, int] = field(default_factory=dict)
+    completed_ids: list[int] = field(default_factory=list)  # replicate numbers, ascending
+    failures: dict[int, str] = field(default_factory=dict)  # replicate number -> reason
+    workers: int = 1
+    start_method: str = "in-process"
     seconds: float = 0.0
 
     @property
+    def reasons(self) -> dict[str, int]:
+        """Failure reasons with their counts, most frequent first (ties by first replicate)."""
+        return dict(Counter(self.failures[r] for r in sorted(self.failures)).most_common())
+
+    @property
     def failed(self) -> int:
-        return int(sum(self.reasons.values()))
+        return len(self.failures)
 
     @property
     def completed(self) -> int:
         return int(self.row_reps.shape[0])
 
     def account(self) -> dict[str, Any]:
-        """bootstrap.json: what was asked, what completed, why replicates failed."""
+        """bootstrap.json: what was asked, what completed, why replicates failed.
+
+        Nothing in it depends on how the replicates were spread over chunks, processes or
+        machines (timing and workers go to the log), so it is identical byte for byte.
+        """
         return {"requested": self.requested, "completed": self.completed, "failed": self.failed,
-                "failure_reasons": dict(self.reasons), "seed": self.seed,
-                "interval": self.interval, "level": 0.95, "workers": self.workers,
-                "start_method": self.start_method, "seconds": round(self.seconds, 3),
+                "failure_reasons": self.reasons, "seed": self.seed,
+                "interval": self.interval, "level": 0.95,
                 "se_scale": {m: "log" for m in RATIO_MEASURES},
                 "resampling": "multinomial frequency weights, numpy default_rng([seed, r])"}
 
@@ -207,9 +191,10 @@ def _too_many(failed: int, requested: int) -> bool:
     return failed > MAX_FAILED_SHARE * requested
 
 
-def _fail_message(reasons: Counter, requested: int) -> str:
+def _fail_message(failures: dict[int, str], requested: int) -> str:
+    reasons = Counter(failures[r] for r in sorted(failures))
     why = "; ".join(f"{k}: {v}" for k, v in reasons.most_common())
-    return (f"bootstrap stopped: {sum(reasons.values())} of {requested} replicates failed "
+    return (f"bootstrap stopped: {len(failures)} of {requested} replicates failed "
             f"(more than {MAX_FAILED_SHARE:.0%}); reasons — {why}")
 
 
@@ -258,15 +243,20 @@ def _run_pool(state, reps, on_result, workers: int, start_method: str | None) ->
 
 
 def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]]], n: int,
-                  protocol, rows: list[dict], curves: list[dict], workers: int = 2, progress: bool | Callable | None = None,
-                  start_method: str | None = None, replicates: int | None = None,
-                  seed: int | None = None) -> BootstrapRun:
+                  protocol, rows: list[dict], curves: list[dict], workers: int = 2,
+                  progress: bool | Callable | None = None, start_method: str | None = None,
+                  replicates: int | None = None, seed: int | None = None,
+                  only: range | None = None) -> BootstrapRun:
     """Run the protocol's bootstrap replicates; ``rows``/``curves`` are the point estimate's.
 
     ``estimator(freq)`` refits the whole analysis with frequency weights ``freq`` (one per each of
     the ``n`` persons) and returns its ``(rows, curves)``; a :class:`~emulant.errors.ReplicateFailure`
     it raises fails that replicate with the exception's ``reason``. With worker processes it
-    must pickle (a module-level function or a :func:`functools.partial` of one).
+    must pickle (a module-level function or a :func:`functools.partial` of one). ``only`` runs
+    one chunk of the replicates (e.g. ``range(25, 50)``); replicate ``r`` gives the same numbers
+    whichever chunk, process or machine runs it. ``progress``: None (a terminal bar when
+    standard error is a terminal), True/False, or a callback ``f(done, total)``; a line with
+    done/total, elapsed time and the time left goes to the ``emulant`` log at every tenth.
 
     Raises
     ------
@@ -276,11 +266,17 @@ def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]
     settings = protocol.analysis.bootstrap
     requested = settings.replicates if replicates is None else int(replicates)
     seed = settings.seed if seed is None else int(seed)
+    reps = range(requested) if only is None else only
+    if reps.start < 0 or reps.stop > requested:
+        raise ValueError(f"replicates {reps.start}-{reps.stop - 1} outside 0-{requested - 1}")
     state = {"estimator": estimator, "n": int(n), "seed": seed,
              "row_index": key_index(rows, ROW_KEY), "curve_index": key_index(curves, CURVE_KEY)}
     results: dict[int, tuple[np.ndarray, np.ndarray]] = {}
-    reasons: Counter = Counter()
-    bar = _Progress(requested, progress)
+    failures: dict[int, str] = {}
+    what = ("bootstrap replicates" if only is None
+            else f"bootstrap replicates {reps.start}-{reps.stop - 1} of 0-{requested - 1}")
+    bar = Progress(what, len(reps), bar=progress if isinstance(progress, bool) or progress is None
+                   else False, callback=progress if callable(progress) else None)
     t0 = time.monotonic()
 
     def on_result(res) -> bool:
@@ -288,25 +284,26 @@ def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]
         if reason is None:
             results[r] = (vals, cvals)
         else:
-            reasons[reason] += 1
-        bar.update(len(results) + sum(reasons.values()), sum(reasons.values()))
-        return _too_many(sum(reasons.values()), requested)
+            failures[r] = reason
+        bar.update(len(results) + len(failures), len(failures))
+        return _too_many(len(failures), requested)
 
     try:
-        if requested > 0 and workers > 1:
-            _run_pool(state, range(requested), on_result, workers, start_method)
-        elif requested > 0:
-            _run_serial(state, range(requested), on_result)
+        if len(reps) > 0 and workers > 1:
+            _run_pool(state, reps, on_result, workers, start_method)
+        elif len(reps) > 0:
+            _run_serial(state, reps, on_result)
     finally:
         bar.close()
-    if _too_many(sum(reasons.values()), requested):
-        raise BootstrapError(_fail_message(reasons, requested))
+    if _too_many(len(failures), requested):
+        raise BootstrapError(_fail_message(failures, requested))
     order = sorted(results)
     row_reps = np.array([results[r][0] for r in order]).reshape(len(order), len(rows))
     curve_reps = np.array([results[r][1] for r in order]).reshape(len(order), len(curves))
     method = "in-process" if workers <= 1 else (start_method or default_start_method())
-    return BootstrapRun(requested, seed, settings.interval, max(1, workers), method,
-                        row_reps, curve_reps, dict(reasons), time.monotonic() - t0)
+    return BootstrapRun(requested, seed, settings.interval, row_reps, curve_reps, order,
+                        {r: failures[r] for r in sorted(failures)}, max(1, workers), method,
+                        time.monotonic() - t0)
 
 
 # ----------------------------------------------------------------------------- intervals

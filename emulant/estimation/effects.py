@@ -21,13 +21,15 @@ import pandas as pd
 
 from emulant import columns
 from emulant.cohort.covariates import covariate_kinds
-from emulant.estimation.bootstrap import attach_intervals, run_bootstrap
+from emulant.estimation.bootstrap import BootstrapRun, attach_intervals, run_bootstrap
+from emulant.estimation.chunks import PointEstimate, combine_runs
 from emulant.estimation.evalue import e_value_rows
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
 from emulant.estimation.sample import TREATED, AnalysisSample, SampleError, build_sample
 from emulant.estimation.tte import time_to_event_estimates
 from emulant.models.design import DesignError, build_design
 from emulant.models.weights import WeightsError
+from emulant.progress import Progress
 from emulant.protocol import MeasuredOutcome, Protocol
 
 log = logging.getLogger(__name__)
@@ -39,11 +41,12 @@ CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low
 EffectsError = EstimationError  # the same class under the module's name
 
 
-def estimate_sample(sample: AnalysisSample) -> tuple[list[dict], list[dict]]:
+def estimate_sample(sample: AnalysisSample, progress: Progress | None = None
+                    ) -> tuple[list[dict], list[dict]]:
     """Every outcome of the protocol for one sample (the point estimate or one replicate).
 
     Returns ``(rows, curve_rows)``: estimates.csv rows without ``se, ci_low, ci_high`` and
-    curves.csv rows without ``ci_low, ci_high``.
+    curves.csv rows without ``ci_low, ci_high``. ``progress`` is stepped once per outcome.
     """
     rows: list[dict] = []
     curves: list[dict] = []
@@ -57,6 +60,8 @@ def estimate_sample(sample: AnalysisSample) -> tuple[list[dict], list[dict]]:
             # curves.csv has no outcome column (CONTRACTS §4); with several time-to-event
             # outcomes their curves need one to be told apart: the outcome's name
             curves += [{"outcome": outcome, **row} for row in c]
+        if progress is not None:
+            progress.step()
     return rows, curves
 
 
@@ -128,6 +133,57 @@ def check_cohort(cohort: pd.DataFrame, protocol: Protocol) -> None:
         raise EstimationError("cohort: no rows")
 
 
+def _prepare(cohort: pd.DataFrame, protocol: Protocol) -> tuple[Any, np.ndarray]:
+    """The design (levels, knots) learned once on the whole cohort, and its matrix."""
+    check_cohort(cohort, protocol)
+    try:
+        kinds = covariate_kinds(protocol, cohort)
+        design = build_design(cohort, protocol.covariates, kinds,
+                              protocol.analysis.propensity.continuous)
+    except DesignError as exc:
+        raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
+    return design, np.asarray(design.transform(cohort), dtype=float)
+
+
+def point_estimate(cohort: pd.DataFrame, protocol: Protocol) -> PointEstimate:
+    """Every outcome, estimand and method with unit frequency weights (no intervals yet)."""
+    steps = Progress("point estimate (sample, then each outcome)",
+                     1 + len(protocol.outcomes.all()))
+    design, X = _prepare(cohort, protocol)
+    try:
+        point = build_sample(cohort, protocol, design, X)
+        steps.step()
+        rows, curves = estimate_sample(point, steps)
+    except (SampleError, WeightsError) as exc:
+        raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
+    steps.close()
+    for w in point.warnings:
+        log.warning("point estimate: %s", w)
+    return PointEstimate(rows, curves, list(point.warnings))
+
+
+def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointEstimate,
+                         only: range | None = None, workers: int = 2,
+                         progress: bool | Callable | None = None,
+                         start_method: str | None = None) -> BootstrapRun:
+    """Replicates ``only`` (all when None) of the protocol's bootstrap, aligned to ``point``."""
+    design, X = _prepare(cohort, protocol)
+    estimator = partial(replicate_estimates, cohort, protocol, design, X)
+    return run_bootstrap(estimator, len(cohort), protocol, point.rows, point.curves,
+                         workers=workers, progress=progress, start_method=start_method, only=only)
+
+
+def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Protocol) -> EffectsResult:
+    """The point estimate with the intervals of its bootstrap chunks, then the E-values."""
+    boot = combine_runs(runs, protocol, len(point.rows), len(point.curves))
+    rows, curves = attach_intervals(point.rows, point.curves, boot,
+                                    protocol.analysis.bootstrap.interval)
+    rows = rows + e_value_rows(rows)
+    account = boot.account()
+    account["point_estimate_warnings"] = list(point.warnings)
+    return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account)
+
+
 def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
                      progress: bool | Callable | None = None,
                      start_method: str | None = None) -> EffectsResult:
@@ -135,7 +191,8 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
 
     The design (levels, knots) is learned once on the whole cohort; the point estimate uses unit
     frequency weights; ``analysis.bootstrap.replicates`` replicates refit everything with
-    multinomial frequency weights (:func:`emulant.estimation.bootstrap.run_bootstrap`).
+    multinomial frequency weights (:func:`emulant.estimation.bootstrap.run_bootstrap`). The
+    workflow runs the same three steps as separate jobs (:mod:`emulant.estimation.chunks`).
 
     Parameters
     ----------
@@ -146,24 +203,7 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
     start_method : the worker pool's start method, 'fork' (default where available) or 'spawn'
         (which re-imports the caller's main module: guard it with ``if __name__ == "__main__"``).
     """
-
-    check_cohort(cohort, protocol)
-    try:
-        kinds = covariate_kinds(protocol, cohort)
-        design = build_design(cohort, protocol.covariates, kinds,
-                              protocol.analysis.propensity.continuous)
-        X = np.asarray(design.transform(cohort), dtype=float)
-        point = build_sample(cohort, protocol, design, X)
-        rows, curves = estimate_sample(point)
-    except (SampleError, DesignError, WeightsError) as exc:
-        raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
-    for w in point.warnings:
-        log.warning("point estimate: %s", w)
-    estimator = partial(replicate_estimates, cohort, protocol, design, X)
-    boot = run_bootstrap(estimator, len(cohort), protocol, rows, curves, workers=workers,
-                         progress=progress, start_method=start_method)
-    rows, curves = attach_intervals(rows, curves, boot, protocol.analysis.bootstrap.interval)
-    rows = rows + e_value_rows(rows)
-    account = boot.account()
-    account["point_estimate_warnings"] = list(point.warnings)
-    return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account)
+    point = point_estimate(cohort, protocol)
+    boot = bootstrap_replicates(cohort, protocol, point, workers=workers, progress=progress,
+                                start_method=start_method)
+    return gather_effects(point, [boot], protocol)

@@ -18,6 +18,7 @@ from emulant.cohort.covariates import covariate_kinds
 from emulant.errors import EmulantError
 from emulant.models.design import build_design
 from emulant.models.propensity import PropensityModel
+from emulant.progress import Progress
 
 ESTIMANDS = ("ATE", "ATT", "ATO")
 
@@ -154,14 +155,20 @@ def fit_weights(cohort: pd.DataFrame, protocol: Any) -> WeightsFit:
     ``person_id, arm, propensity`` and ``columns.weight(estimand)`` per estimand. The positivity
     summary (``positivity.json``) is :func:`emulant.models.positivity.positivity_of` of it.
     """
+    done = Progress("weights (design, propensity model, each estimand)", 2 + len(protocol.estimands))
     design = design_for(cohort, protocol)
     X = design.transform(cohort)
     a = treated_indicator(cohort)
+    done.step()
     model = PropensityModel().fit(X, a, columns=design.columns)
     e = model.predict(X)
+    done.step()
     settings = protocol.analysis.weights
-    w = {est: estimand_weights(a, e, est, settings.stabilize, settings.truncate)
-         for est in protocol.estimands}
+    w = {}
+    for est in protocol.estimands:
+        w[est] = estimand_weights(a, e, est, settings.stabilize, settings.truncate)
+        done.step()
+    done.close()
     out = pd.DataFrame({"person_id": cohort["person_id"].to_numpy(),
                         "arm": cohort["arm"].to_numpy(), "propensity": e})
     for est, v in w.items():

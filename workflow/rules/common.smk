@@ -15,6 +15,7 @@ EXTRACT_FILES = emulant_paths.extract_files(EXTRACT, synthetic=IS_SYNTHETIC)
 PROTOCOL_FILES = emulant_paths.protocol_files(PROTOCOL_PARSED)
 DUCKDB = config.get("duckdb", {})
 WORKERS = config.get("workers", 2)
+BOOTSTRAP_CHUNKS = emulant_paths.bootstrap_chunks(PROTOCOL_PARSED, config.get("bootstrap_chunks"))
 
 
 def result(name):
@@ -23,3 +24,8 @@ def result(name):
 
 def logfile(name):
     return f"{RESULTS}/logs/{name}.log"
+
+
+def job_threads(wildcards, threads):
+    """A rule's threads as Snakemake gave them (scaled down to --cores): its worker processes."""
+    return threads
