@@ -12,11 +12,13 @@ from typing import Any
 def censoring_assumption(protocol: Any) -> str:
     """The censoring assumption the time-to-event estimates rest on, in words for the report."""
     if protocol.analysis.censoring_weights:
-        return ("Censoring (coverage end, administrative end, end of follow-up) is assumed "
-                "non-informative given arm, time and the covariates: inverse probability of "
-                "censoring weights from a pooled logistic model of censoring (period "
-                f"{protocol.analysis.period_days} days) are used in the IPW curves and the "
-                "doubly robust risks.")
+        return ("Censoring (coverage end, administrative end) is assumed non-informative "
+                "given arm, time and the covariates: inverse probability of censoring weights "
+                "from a pooled logistic model of the daily censoring hazard (time basis in "
+                f"periods of {protocol.analysis.period_days} days) are used in the IPW curves "
+                "and the doubly robust risks. Reaching the end of follow-up (max_days, or an "
+                "end every person still followed reaches on the same day) is the planned end "
+                "of the study window and does not enter that model as censoring.")
     return ("Censoring (coverage end, administrative end, end of follow-up) is assumed "
             "non-informative within each arm: the weighted Aalen–Johansen/Kaplan–Meier curves "
             "keep censored persons in the risk set until they leave, and the doubly robust risks "

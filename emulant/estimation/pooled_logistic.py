@@ -1,18 +1,25 @@
-"""Pooled logistic models of discrete-time hazards and the parametric g-formula for risks.
+"""Pooled logistic models of daily hazards and the parametric g-formula for risks.
 
-Follow-up is cut into periods of ``period_days`` days: period :math:`k` holds days
-:math:`(kP, (k+1)P]` (day 0 belongs to period 0). A person is at risk in periods
-:math:`0, \\dots, L_i`; an event on day :math:`T_i` falls in period :math:`\\lceil T_i/P\\rceil - 1`
-(0 for day 0), a person censored on day :math:`T_i` survives periods up to
-:math:`\\lceil T_i/P\\rceil - 1` and leaves at its end. Within a period the outcome comes first:
-the outcome model is fitted on every person-period at risk, the competing-event model on those
-without the outcome in that period, the censoring model on those with no event in it.
+Follow-up is counted in days; day :math:`d \\ge 1` lies in period :math:`k = \\lfloor (d-1)/P
+\\rfloor` of ``period_days`` :math:`P` days (days :math:`kP+1, \\dots, (k+1)P`). The periods are
+only the time basis of the hazard: the hazard of each model is a *daily* hazard, constant within
+a period, and the risk set is exact to the day. A person followed to day :math:`T_i` is at risk
+on days :math:`1, \\dots, T_i` (censoring comes after events on its day, as in Kaplan–Meier); an
+event on day 0 is counted on day 1. Within a day the outcome comes first: the outcome model is at
+risk on days :math:`1..T_i`, the competing-event model on those days without the outcome, the
+censoring model on the days without an event of either cause (:func:`days_at_risk`).
 
-Every model is described by two arrays per person — the last period at risk and whether the
-event happened in it — and fitted on the implicit person-period table (an :math:`n \\times K`
-at-risk mask) by Newton–Raphson with the Hessian assembled from per-person and per-period sums,
-so no long table is materialised; :func:`person_period` builds the long table explicitly (with
-``np.repeat``) for checks and other uses.
+With :math:`m_{ik}` the days person :math:`i` is at risk in period :math:`k` and :math:`y_{ik}`
+the event on the last of them, the log-likelihood of the daily hazard :math:`h_i(k)` is
+
+.. math:: \\ell = \\sum_{i,k} f_i \\bigl[y_{ik} \\log h_i(k) + (m_{ik} - y_{ik})
+          \\log(1 - h_i(k))\\bigr],
+
+the pooled logistic likelihood of the person-day table (a binomial of :math:`m_{ik}` trials per
+person-period), fitted by Newton–Raphson with the Hessian assembled from per-person and
+per-period sums, so neither the person-day nor the person-period table is materialised. A person
+censored inside a period contributes only the days followed there (not the whole period), which
+is what makes the g-formula agree with the Aalen–Johansen estimate under saturated models.
 """
 
 from __future__ import annotations
@@ -32,33 +39,28 @@ except ImportError:  # pragma: no cover
         return nullcontext()
 
 
-def last_period(time, status, period_days: int) -> np.ndarray:
-    """The last period each person is at risk in (-1: none, a censoring on day 0)."""
+def days_at_risk(time, status, model: str, lost=None) -> tuple[np.ndarray, np.ndarray]:
+    """Days at risk :math:`d_i` (days :math:`1..d_i`) of one model, and its event on day
+    :math:`d_i`.
+
+    ``outcome``: :math:`d = T` (an event on day 0 counts on day 1), the event is the outcome;
+    ``competing``: the day of an outcome is not at risk of the competing event;
+    ``censoring``: ``lost`` (bool) marks the censorings the censoring model counts (a loss to
+    follow-up on day :math:`T`, at risk that day); every other person leaves it after day
+    :math:`T - 1` (an event comes before censoring on its day, and a planned end of follow-up is
+    no loss).
+    """
     t = np.asarray(time, dtype=float)
     s = np.asarray(status, dtype=int)
-    k = np.ceil(t / period_days).astype(int) - 1
-    return np.where(s == 0, k, np.maximum(k, 0))
-
-
-def person_period(time, status, period_days: int) -> dict[str, np.ndarray]:
-    """The long person-period table: one row per person and period at risk.
-
-    Returns
-    -------
-    dict of arrays ``row`` (the person's index), ``period``, ``outcome``, ``competing``,
-    ``censored`` (0/1: the event in that period)
-    """
-    s = np.asarray(status, dtype=int)
-    last = last_period(time, s, period_days)
-    counts = last + 1
-    row = np.repeat(np.arange(s.size), counts)
-    first = np.repeat(np.cumsum(counts) - counts, counts)
-    period = np.arange(row.size) - first
-    final = period == last[row]
-    return {"row": row, "period": period,
-            "outcome": (final & (s[row] == OUTCOME)).astype(int),
-            "competing": (final & (s[row] == COMPETING)).astype(int),
-            "censored": (final & (s[row] == 0)).astype(int)}
+    d = np.where(s != 0, np.maximum(t, 1.0), t)
+    if model == "outcome":
+        return d, s == OUTCOME
+    if model == "competing":
+        return d - (s == OUTCOME), s == COMPETING
+    if model == "censoring":
+        gone = np.asarray(lost, dtype=bool) & (s == 0) & (t >= 1)
+        return np.where(gone, d, np.maximum(d - 1, 0.0)), gone
+    raise SurvivalError(f"model {model!r}: expected 'outcome', 'competing' or 'censoring'")
 
 
 def time_basis(n_periods: int, kind: str = "spline", n_knots: int = 5) -> np.ndarray:
@@ -100,12 +102,13 @@ _CAP = np.exp(35.0)  # a hazard logit above 35 is a probability of 1
 class _Data:
     """The implicit person-period table of one model, in blocks of persons."""
 
-    def __init__(self, B, Z, a, f, last, y_rows, y_k, y_f):
-        self.B, self.Z, self.a, self.f, self.last = B, Z, a, f, last
+    def __init__(self, B, Z, a, f, days, period_days, y_rows, y_k, y_f):
+        self.B, self.Z, self.a, self.f, self.days = B, Z, a, f, days
+        self.P = period_days
         self.arm = (a == 1).astype(np.intp)
         self.y_rows, self.y_k, self.y_f = y_rows, y_k, y_f
         K = B.shape[0]
-        self.periods = np.arange(K)
+        self.starts = np.arange(K) * period_days  # days before each period
         self.ysum_k = np.bincount(y_k, weights=y_f, minlength=K)
         self.ysum_k1 = np.bincount(y_k, weights=y_f * a[y_rows], minlength=K)
         self.ysum_x = Z[y_rows].T @ y_f
@@ -126,7 +129,9 @@ class _Data:
         for lo in range(0, a.size, CHUNK):
             sl = slice(lo, lo + CHUNK)
             Zc, ac = Z[sl], a[sl]
-            fm = self.f[sl, None] * (self.periods[None, :] <= self.last[sl, None])
+            # f * days at risk in each period (0 after the last one)
+            fm = np.clip(self.days[sl, None] - self.starts[None, :], 0, self.P)
+            fm *= self.f[sl, None]
             lin = np.clip(Zc @ beta, -700, 300) if p else np.zeros(ac.size)
             E = expc[self.arm[sl]]  # exp(eta) = exp(x'beta) * exp(b(k)'(gamma + a alpha))
             E *= np.exp(lin)[:, None]
@@ -134,8 +139,8 @@ class _Data:
             ll -= float(np.vdot(fm, np.log1p(E)))
             inv = 1.0 / (1.0 + E)
             pm = E * inv
-            pm *= fm  # f * mask * p
-            W = np.multiply(pm, inv, out=inv)  # f * mask * p (1 - p)
+            pm *= fm  # f * m * p
+            W = np.multiply(pm, inv, out=inv)  # f * m * p (1 - p)
             s_k += pm.sum(axis=0)
             s_k1 += ac @ pm
             w_k += W.sum(axis=0)
@@ -153,20 +158,21 @@ class _Data:
 
 
 class PooledLogistic:
-    """Pooled logistic regression of a discrete-time hazard (D'Agostino et al. 1990, Stat Med
-    9:1501), with frequency weights:
+    """Pooled logistic regression of a daily hazard, constant within each period (D'Agostino et
+    al. 1990, Stat Med 9:1501, on the person-day table), with frequency weights:
 
     .. math::
 
         \\operatorname{logit} h_i(k) = b(k)^\\top \\gamma + a_i\\, b(k)^\\top \\alpha
         + x_i^\\top \\beta
 
-    with :math:`b(k)` the time basis (its constant column gives the arm's main effect, the rest
-    the arm-by-time interaction). Fitted by Newton–Raphson on the implicit person-period table.
+    with :math:`b(k)` the time basis of the period :math:`k` (its constant column gives the
+    arm's main effect, the rest the arm-by-time interaction). Fitted by Newton–Raphson on the
+    implicit person-period table, each cell a binomial of the days at risk in it.
 
     Attributes
     ----------
-    coef_ : (gamma, alpha, beta) stacked; n_iter_, converged_
+    coef_ : (gamma, alpha, beta) stacked; period_days_; n_iter_, converged_
     """
 
     def __init__(self, max_iter: int = 50, tol: float = 1e-8):
@@ -179,25 +185,30 @@ class PooledLogistic:
         lin = (X - self.x_mean_) / self.x_scale_ @ be if X.shape[1] else np.zeros(X.shape[0])
         return lin, self.basis_ @ g, self.basis_ @ (g + al)
 
-    def fit(self, basis, X, a, last, event, freq=None) -> PooledLogistic:
-        """Fit on persons' at-risk periods ``0..last`` with ``event`` in period ``last``."""
+    def fit(self, basis, X, a, days, event, freq=None, period_days: int = 1) -> PooledLogistic:
+        """Fit on persons at risk on days ``1..days`` with ``event`` on the last of them.
+
+        ``basis`` has one row per period of ``period_days`` days; days past the last period
+        are not at risk.
+        """
         B = np.asarray(basis, dtype=float)
         K, q = B.shape
         X = np.asarray(X, dtype=float).reshape(len(a), -1)
         a = np.asarray(a, dtype=float)
         f = np.ones(a.size) if freq is None else np.asarray(freq, dtype=float)
-        last = np.minimum(np.asarray(last, dtype=int), K - 1)
-        self.basis_ = B
+        days = np.minimum(np.floor(np.asarray(days, dtype=float)), K * period_days)
+        self.basis_, self.period_days_ = B, int(period_days)
         self.x_mean_ = np.average(X, axis=0, weights=f) if X.shape[1] else np.zeros(0)
         sd = X.std(axis=0) if X.shape[1] else np.zeros(0)
         self.x_scale_ = np.where(sd > 0, sd, 1.0)
-        keep = (f > 0) & (last >= 0)  # persons with at least one period at risk
+        keep = (f > 0) & (days >= 1)  # persons with at least one day at risk
         Z = ((X - self.x_mean_) / self.x_scale_)[keep]
-        a, f, last = a[keep], f[keep], last[keep]
+        a, f, days = a[keep], f[keep], days[keep]
         ev = np.asarray(event, dtype=bool)[keep]
+        last = (np.ceil(days / period_days) - 1).astype(int)  # the period of the last day
         y_rows, y_k, y_f = np.flatnonzero(ev), last[ev], f[ev]
-        data = _Data(B, Z, a, f, last, y_rows, y_k, y_f)
-        rate = y_f.sum() / max(float(f @ (last + 1)), 1e-300)
+        data = _Data(B, Z, a, f, days, period_days, y_rows, y_k, y_f)
+        rate = y_f.sum() / max(float(f @ days), 1e-300)
         params = np.zeros(2 * q + Z.shape[1])
         if 0 < rate < 1:
             params[:q] = np.linalg.lstsq(B, np.full(K, np.log(rate / (1 - rate))), rcond=None)[0]
@@ -229,67 +240,93 @@ class PooledLogistic:
         self.coef_ = params
 
     def predict_hazard(self, X, arm: int) -> np.ndarray:
-        """:math:`h_i(k)` for every person and period had everyone been in ``arm`` (n x K)."""
+        """The daily hazard :math:`h_i(k)` for every person and period had everyone been in
+        ``arm`` (n x K)."""
         X = np.asarray(X, dtype=float).reshape(np.shape(X)[0], -1)
         lin, c0, c1 = self._eta_parts(X, self.coef_)
         c = c1 if arm == 1 else c0
         return 1.0 / (1.0 + np.exp(-(lin[:, None] + c[None, :])))
 
 
-def cumulative_incidence(h_out: np.ndarray, h_comp: np.ndarray | None = None) -> np.ndarray:
-    """Each person's cumulative incidence at the end of each period (n x K).
+def _log1m(h: np.ndarray) -> np.ndarray:
+    """:math:`\\log(1 - h)`, with :math:`h` kept below 1 so that logs stay finite."""
+    return np.log1p(-np.minimum(h, 1.0 - 1e-12))
+
+
+def _split(days, period_days: int, K: int):
+    """Day :math:`d` as full periods before it and the days of the next period through it."""
+    d = np.asarray(days, dtype=float)
+    k = np.clip(np.ceil(d / period_days) - 1, 0, K - 1).astype(int)
+    return k, np.clip(d - k * period_days, 0, period_days)
+
+
+def survival_through(log_q: np.ndarray, days, period_days: int,
+                     own: bool = False) -> np.ndarray:
+    """:math:`\\exp \\sum_{j=1}^{d} \\log q_i(k(j))`: surviving days :math:`1..d` with the
+    daily probability :math:`q_i(k)` of period :math:`k` (``log_q``, n x K); 1 at :math:`d = 0`.
+
+    For each person and each of ``days`` (n x len(days)), or with ``own`` for each person at
+    their own day (``days`` of length n; n values).
+    """
+    n, K = log_q.shape
+    k, j = _split(days, period_days, K)
+    before = np.concatenate([np.zeros((n, 1)), np.cumsum(period_days * log_q, axis=1)], axis=1)
+    if own:
+        rows = np.arange(n)
+        return np.exp(before[rows, k] + log_q[rows, k] * j)
+    return np.exp(before[:, k] + log_q[:, k] * j)
+
+
+def incidence_at(h_out: np.ndarray, h_comp: np.ndarray | None, days,
+                 period_days: int) -> np.ndarray:
+    """Each person's cumulative incidence of the outcome by each of ``days`` (n x len(days)).
+
+    With daily hazards :math:`h` (outcome) and :math:`c` (competing event, 0 without one),
+    constant within each period, and :math:`q = (1-h)(1-c)`,
 
     .. math::
 
-        F_i(k) = \\sum_{l \\le k} h^{out}_i(l) \\prod_{j < l}
-        \\bigl(1 - h^{out}_i(j)\\bigr)\\bigl(1 - h^{comp}_i(j)\\bigr)
+        F_i(d) = \\sum_{j=1}^{d} h_i(k(j)) \\prod_{l<j} q_i(k(l)),
 
-    the total effect under competing events (Young et al. 2020, Stat Med 39:1199); without a
-    competing event :math:`h^{comp} = 0` and :math:`F = 1 - \\prod (1 - h^{out})`.
+    summed in closed form over each period's days,
+    :math:`\\sum_{j=1}^{m} h q^{j-1} = h (1 - q^m)/(1 - q)` — the total effect under
+    competing events (Young et al. 2020, Stat Med 39:1199); without a competing event
+    :math:`F = 1 - \\prod (1 - h)`.
     """
-    surv = 1.0 - h_out if h_comp is None else (1.0 - h_out) * (1.0 - h_comp)
-    before = np.cumprod(surv, axis=1)
-    before = np.concatenate([np.ones((surv.shape[0], 1)), before[:, :-1]], axis=1)
-    return np.cumsum(h_out * before, axis=1)
+    K = h_out.shape[1]
+    log_q = _log1m(h_out) + (0.0 if h_comp is None else _log1m(h_comp))
+    k, j = _split(days, period_days, K)
+
+    def geometric(m, lq):  # sum_{j=1}^{m} q^(j-1), with q = exp(lq) <= 1
+        den = np.expm1(lq)
+        return np.divide(np.expm1(m * lq), den, out=np.broadcast_to(m, lq.shape).astype(float),
+                         where=den < 0)
+
+    start = survival_through(log_q, np.arange(K) * period_days, period_days)  # S at period starts
+    gain = start * h_out * geometric(float(period_days), log_q)  # incidence over a full period
+    before = np.concatenate([np.zeros((h_out.shape[0], 1)), np.cumsum(gain, axis=1)], axis=1)
+    return before[:, k] + start[:, k] * h_out[:, k] * geometric(j[None, :], log_q[:, k])
 
 
-def at_days(F: np.ndarray, days, period_days: int, last_end: float | None = None) -> np.ndarray:
-    """Values given at period ends at ``days``, linearly interpolated within a period, 0 at day 0
-    (n x len(days), or len(days) for one curve).
+def hazard_models(time, status, a, X, freq, period_days: int, max_days: int,
+                  competing: bool, lost=None) -> dict[str, PooledLogistic]:
+    """Fit the pooled logistic models of the outcome, competing-event and censoring hazards.
 
-    Period :math:`k` ends on day :math:`(k+1)P`, the last one on ``last_end`` when given (the
-    follow-up's ``max_days``, which may cut the last period short).
+    Follow-up runs to day ``max_days`` (:math:`\\lceil` ``max_days`` / P :math:`\\rceil`
+    periods). ``lost`` (bool per person, or None for no censoring model) marks the censorings
+    the censoring model counts: a loss to follow-up, never the planned end of follow-up
+    (:func:`emulant.estimation.tte.losses`).
     """
-    F2 = np.atleast_2d(F)
-    K = F2.shape[1]
-    d = np.asarray(days, dtype=float)
-    start_last = (K - 1) * period_days
-    end_last = float(K * period_days if last_end is None else last_end)
-    j = np.where(d <= start_last, d / period_days,
-                 (K - 1) + np.clip((d - start_last) / max(end_last - start_last, 1e-12), 0, 1))
-    j = np.clip(j, 0, K)
-    lo = np.minimum(np.floor(j).astype(int), K - 1)
-    frac = j - lo
-
-    def column(k):  # value at the end of period k - 1 (0 at day 0)
-        return np.where(k[None, :] > 0, F2[:, np.maximum(k - 1, 0)], 0.0)
-
-    out = column(lo) * (1 - frac) + column(lo + 1) * frac
-    return out if np.ndim(F) == 2 else out[0]
-
-
-def hazard_models(time, status, a, X, freq, period_days: int, n_periods: int,
-                  competing: bool, censoring: bool = False) -> dict[str, PooledLogistic]:
-    """Fit the pooled logistic models of the outcome, competing-event and censoring hazards."""
+    t = np.minimum(np.asarray(time, dtype=float), max_days)
     s = np.asarray(status, dtype=int)
-    last = np.minimum(last_period(time, s, period_days), n_periods - 1)
-    B = time_basis(n_periods)
-    models = {"outcome": PooledLogistic().fit(B, X, a, last, s == OUTCOME, freq)}
-    if competing and np.any(s == COMPETING):
-        models["competing"] = PooledLogistic().fit(B, X, a, last - (s == OUTCOME),
-                                                   s == COMPETING, freq)
-    if censoring:
-        models["censoring"] = PooledLogistic().fit(B, X, a, last - (s != 0), s == 0, freq)
+    K = max(1, -(-int(max_days) // period_days))
+    B = time_basis(K)
+    kinds = ["outcome"] + (["competing"] if competing and np.any(s == COMPETING) else [])
+    kinds += ["censoring"] if lost is not None else []
+    models = {}
+    for name in kinds:
+        days, event = days_at_risk(t, s, name, lost)
+        models[name] = PooledLogistic().fit(B, X, a, days, event, freq, period_days)
     for name, m in models.items():
         if not m.converged_:
             warnings.warn(NonConvergenceWarning(
@@ -298,38 +335,37 @@ def hazard_models(time, status, a, X, freq, period_days: int, n_periods: int,
     return models
 
 
-def gformula_incidence(models: dict[str, PooledLogistic], X) -> dict[int, np.ndarray]:
-    """Each person's predicted cumulative incidence at period ends under each arm (n x K)."""
+def gformula_incidence(models: dict[str, PooledLogistic], X, days) -> dict[int, np.ndarray]:
+    """Each person's predicted cumulative incidence by each of ``days`` under each arm
+    (n x len(days))."""
     X = np.asarray(X, dtype=float).reshape(np.shape(X)[0], -1)
-    K = models["outcome"].basis_.shape[0]
-    out = {arm: np.empty((X.shape[0], K)) for arm in (0, 1)}
+    P = models["outcome"].period_days_
+    out = {arm: np.empty((X.shape[0], np.size(days))) for arm in (0, 1)}
     for lo in range(0, X.shape[0], CHUNK):
         Xc = X[lo:lo + CHUNK]
         for arm in (0, 1):
             h_comp = (models["competing"].predict_hazard(Xc, arm) if "competing" in models
                       else None)
-            out[arm][lo:lo + CHUNK] = cumulative_incidence(
-                models["outcome"].predict_hazard(Xc, arm), h_comp)
+            out[arm][lo:lo + CHUNK] = incidence_at(models["outcome"].predict_hazard(Xc, arm),
+                                                   h_comp, days, P)
     return out
 
 
-def censoring_probability_before(model: PooledLogistic, X, a, periods) -> list[np.ndarray]:
-    """:math:`G_i = \\prod_{j < k_i} (1 - c_i(j))`: uncensored through the periods before
-    ``k_i``, under the person's own arm (the pooled logistic censoring model).
+def censoring_probability_before(model: PooledLogistic, X, a, days) -> list[np.ndarray]:
+    """:math:`G_i(d^-) = \\prod_{j < d} (1 - c_i(k(j)))`: uncensored on the days before
+    :math:`d_i`, under the person's own arm (the pooled logistic censoring model).
 
-    ``periods`` is a list of arrays :math:`k` (one value per person); one result per array.
+    ``days`` is a list of arrays :math:`d` (one value per person); one result per array.
     """
     X = np.asarray(X, dtype=float).reshape(np.shape(X)[0], -1)
     a = np.asarray(a)
-    ks = [np.asarray(k, dtype=int) for k in periods]
-    out = [np.empty(X.shape[0]) for _ in ks]
+    P = model.period_days_
+    ds = [np.maximum(np.asarray(d, dtype=float) - 1, 0) for d in days]
+    out = [np.empty(X.shape[0]) for _ in ds]
     for lo in range(0, X.shape[0], CHUNK):
         sl = slice(lo, lo + CHUNK)
-        c = np.where(a[sl, None] == 1, model.predict_hazard(X[sl], 1),
-                     model.predict_hazard(X[sl], 0))
-        G = np.cumprod(1.0 - c, axis=1)
-        G = np.concatenate([np.ones((G.shape[0], 1)), G], axis=1)
-        rows = np.arange(G.shape[0])
-        for res, k in zip(out, ks, strict=True):
-            res[sl] = G[rows, np.clip(k[sl], 0, G.shape[1] - 1)]
+        log_c = _log1m(np.where(a[sl, None] == 1, model.predict_hazard(X[sl], 1),
+                                model.predict_hazard(X[sl], 0)))
+        for res, d in zip(out, ds, strict=True):
+            res[sl] = survival_through(log_c, d[sl], P, own=True)
     return out

@@ -22,13 +22,11 @@ Methods (each estimand of the protocol; ``unadjusted`` once, with ``estimand`` e
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
 from emulant import columns
 from emulant.estimation.cox import cox_hazard_ratio
-from emulant.estimation.pooled_logistic import at_days, gformula_incidence, hazard_models
+from emulant.estimation.pooled_logistic import gformula_incidence, hazard_models
 from emulant.estimation.survival import (
     COMPETING,
     OUTCOME,
@@ -54,6 +52,29 @@ STATUS = {"outcome": OUTCOME, "competing": COMPETING}
 
 def outcome_arrays(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
     """``time`` (days) and ``status`` (0 censored, 1 outcome, 2 competing) of one outcome."""
+    time, reason = _end_columns(cohort, outcome)
+    status = np.select([reason == "outcome", reason == "competing"], [OUTCOME, COMPETING], 0)
+    return time, status
+
+
+def losses(cohort, outcome: str, freq, max_days: int) -> np.ndarray:
+    """The censorings a censoring model counts: losses to follow-up, not planned ends.
+
+    A person is lost when follow-up ends by ``coverage_end`` or ``administrative_end`` (calendar
+    time, which differs between persons entering on different days) before ``max_days`` and
+    before the last day anyone (with a positive frequency weight) is followed. Reaching
+    ``max_days``, and an end of follow-up that every person still followed reaches on the same
+    day, is the planned end of the study window, not censoring: counted as censoring, it drives
+    the censoring hazard towards 1 at the end of follow-up (common practice, no single source).
+    """
+    time, reason = _end_columns(cohort, outcome)
+    f = np.asarray(freq, dtype=float)
+    last = float(np.max(time[f > 0], initial=0.0))
+    end = min(float(max_days), last)
+    return np.isin(reason, ("coverage_end", "administrative_end")) & (time < end)
+
+
+def _end_columns(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
     day_col, reason_col = columns.end_day(outcome), columns.end_reason(outcome)
     for col in (day_col, reason_col):
         if col not in cohort.columns:
@@ -68,8 +89,7 @@ def outcome_arrays(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
     if np.isnan(time).any():
         i = int(np.flatnonzero(np.isnan(time))[0])
         raise SurvivalError(f"cohort: column {day_col!r}, row {i} is missing")
-    status = np.select([reason == "outcome", reason == "competing"], [OUTCOME, COMPETING], 0)
-    return time, status
+    return time, reason
 
 
 def _row(outcome, estimand, method, measure, horizon, arm, comparator, estimate, n, events):
@@ -86,6 +106,7 @@ class _Context:
         p = sample.protocol
         self.outcome, self.protocol = outcome, p
         self.time, self.status = outcome_arrays(sample.cohort, outcome)
+        self.cohort = sample.cohort
         self.a = np.asarray(sample.a).astype(int)
         self.f = np.asarray(sample.freq, dtype=float)
         self.X, self.e, self.weights = sample.X, np.asarray(sample.e, float), sample.weights
@@ -94,7 +115,6 @@ class _Context:
         self.max_days = p.follow_up.max_days
         self.horizons = tuple(p.analysis.horizons_days)
         self.grid = day_grid(self.max_days, self.P)
-        self.K = max(1, math.ceil(self.max_days / self.P))
         self.competing = bool(p.outcomes.competing) or bool(np.any(self.status == COMPETING))
         self.n = {g: float(self.f[self.a == g].sum()) for g in (0, 1)}
         self.events = {(g, h): events_by(self.time[self.a == g], self.status[self.a == g],
@@ -177,13 +197,14 @@ def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict
                          r["n"], r["events"]))
 
     need_models = "standardization" in methods or "doubly_robust" in methods
-    models = (hazard_models(c.time, c.status, c.a, c.X, c.f, c.P, c.K, c.competing,
-                            censoring=an.censoring_weights)
+    lost = losses(c.cohort, outcome, c.f, c.max_days) if an.censoring_weights else None
+    models = (hazard_models(c.time, c.status, c.a, c.X, c.f, c.P, c.max_days, c.competing, lost)
               if need_models or ("ipw" in methods and an.censoring_weights) else None)
-    incidence = gformula_incidence(models, c.X) if need_models else None
+    days = np.concatenate([c.grid, np.asarray(c.horizons, dtype=float)])
+    incidence = gformula_incidence(models, c.X, days) if need_models else None
     cens = None
     if "doubly_robust" in methods or ("ipw" in methods and an.censoring_weights):
-        cens = censoring_at(c.time, c.status, c.a, c.f, c.horizons, c.P,
+        cens = censoring_at(c.time, c.status, c.a, c.f, c.horizons,
                             models.get("censoring") if models and an.censoring_weights else None,
                             c.X)
 
@@ -203,12 +224,12 @@ def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict
                 rows.append(c.hazard_ratio_row(est, "ipw", np.asarray(c.weights[est], float)))
         if need_models:
             v = target_weights(est, c.a, c.e, c.f)
-            curves, risk = standardized_risks(incidence, v, c.grid, c.horizons, c.P, c.max_days)
+            curves, risk = standardized_risks(incidence, v, c.grid.size, c.horizons)
             if "standardization" in methods:
                 rows += c.contrast_rows(est, "standardization", risk)
                 curve_rows += c.curve_rows(est, "standardization", curves)
             if "doubly_robust" in methods:
-                F_h = {g: at_days(incidence[g], c.horizons, c.P, c.max_days) for g in (0, 1)}
+                F_h = {g: incidence[g][:, c.grid.size:] for g in (0, 1)}
                 risk = aipw_risk(c.time, c.status, c.a, w, v, F_h, cens, c.horizons)
                 rows += c.contrast_rows(est, "doubly_robust", risk)
     return rows, curve_rows

@@ -3,16 +3,9 @@ the IPCW cumulative incidence, standardized (g-formula) risks and the augmented 
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
-from emulant.estimation.pooled_logistic import (
-    PooledLogistic,
-    at_days,
-    censoring_probability_before,
-    last_period,
-)
+from emulant.estimation.pooled_logistic import PooledLogistic, censoring_probability_before
 from emulant.estimation.survival import OUTCOME, SurvivalError, censoring_survival, step_before
 
 ESTIMANDS = ("ATE", "ATT", "ATO")
@@ -35,32 +28,35 @@ def target_weights(estimand: str, a, e, freq) -> np.ndarray:
     raise SurvivalError(f"estimands: {estimand!r} is not one of {list(ESTIMANDS)}")
 
 
-def standardized_risks(incidence: dict[int, np.ndarray], v, grid, horizons, period_days: int,
-                       last_end: float | None = None):
+def standardized_risks(incidence: dict[int, np.ndarray], v, n_grid: int, horizons):
     """The g-formula risk under each arm, :math:`\\sum_i v_i \\hat F_i^{a}(t) / \\sum_i v_i`.
+
+    ``incidence`` holds each person's :math:`\\hat F_i^a` on the grid's ``n_grid`` days, then
+    at the ``horizons``.
 
     Returns
     -------
-    curves : {arm: risk on ``grid``}; risk : {arm: {horizon: risk}}
+    curves : {arm: risk on the grid}; risk : {arm: {horizon: risk}}
     """
     v = np.asarray(v, dtype=float)
     curves, risk = {}, {}
     for g, F in incidence.items():
         mean = v @ F / v.sum()
-        curves[g] = at_days(mean, grid, period_days, last_end)
-        risk[g] = dict(zip(horizons, at_days(mean, horizons, period_days, last_end), strict=True))
+        curves[g] = mean[:n_grid]
+        risk[g] = dict(zip(horizons, mean[n_grid:], strict=True))
     return curves, risk
 
 
-def censoring_at(time, status, a, freq, horizons, period_days: int,
+def censoring_at(time, status, a, freq, horizons,
                  model: PooledLogistic | None = None, X=None) -> dict:
     """Probabilities of remaining uncensored, per person: :math:`G_i(T_i^-)` and
     :math:`G_i(t^-)` at each horizon :math:`t`.
 
     Without ``model``: the Kaplan–Meier estimate of the censoring distribution in the person's
     arm (censoring independent of the covariates within an arm). With ``model`` (a pooled
-    logistic censoring model, ``analysis.censoring_weights``): :math:`\\prod_{j<k}(1 - c_i(j))`
-    over the periods before the one holding :math:`T_i` (or :math:`t`).
+    logistic model of the daily censoring hazard, ``analysis.censoring_weights``):
+    :math:`\\prod_{j<d}(1 - c_i(k(j)))` over the days before :math:`d = T_i` (or :math:`t`);
+    an event on day 0 counts on day 1, as in the hazard models.
 
     Returns
     -------
@@ -71,9 +67,8 @@ def censoring_at(time, status, a, freq, horizons, period_days: int,
     a = np.asarray(a).astype(int)
     f = np.asarray(freq, dtype=float)
     if model is not None:
-        ks = [last_period(t, s, period_days)]
-        ks += [np.full(t.size, max(math.ceil(h / period_days) - 1, 0)) for h in horizons]
-        G = censoring_probability_before(model, X, a, ks)
+        days = [np.where(s != 0, np.maximum(t, 1.0), t)] + [np.full(t.size, h) for h in horizons]
+        G = censoring_probability_before(model, X, a, days)
         return {"event": G[0], "horizon": dict(zip(horizons, G[1:], strict=True))}
     g_event = np.ones(t.size)
     g_h = {h: np.ones(t.size) for h in horizons}

@@ -7,95 +7,107 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from daily_hazards import analysis_sample
 from two_arm import two_arm_protocol
 
 from emulant import columns
 from emulant.estimation.pooled_logistic import (
     PooledLogistic,
-    at_days,
-    cumulative_incidence,
+    days_at_risk,
     hazard_models,
-    last_period,
-    person_period,
+    incidence_at,
     time_basis,
 )
-from emulant.estimation.sample import AnalysisSample
 from emulant.estimation.survival import SurvivalError, aalen_johansen, step_at
-from emulant.estimation.tte import outcome_arrays, time_to_event_estimates
+from emulant.estimation.tte import losses, outcome_arrays, time_to_event_estimates
 from emulant.estimation.tte_weighting import aipw_risk, censoring_at, ipcw_incidence, target_weights
 from emulant.wording import censoring_assumption, hazard_ratio_label
 
 P = 30
 
 
-def test_person_period_hand_computation():
-    # hand computation, P = 30: day 0 censored -> no period; day 0 event -> period 0;
-    # day 31 outcome -> periods 0, 1; day 60 censored -> periods 0, 1; day 61 competing -> 0..2
-    pp = person_period([0, 0, 31, 60, 61], [0, 1, 1, 0, 2], P)
-    np.testing.assert_array_equal(pp["row"], [1, 2, 2, 3, 3, 4, 4, 4])
-    np.testing.assert_array_equal(pp["period"], [0, 0, 1, 0, 1, 0, 1, 2])
-    np.testing.assert_array_equal(pp["outcome"], [1, 0, 1, 0, 0, 0, 0, 0])
-    np.testing.assert_array_equal(pp["competing"], [0, 0, 0, 0, 0, 0, 0, 1])
-    np.testing.assert_array_equal(pp["censored"], [0, 0, 0, 0, 1, 0, 0, 0])
-    np.testing.assert_array_equal(last_period([0, 0, 31], [0, 1, 1], P), [-1, 0, 1])
+def test_days_at_risk_hand_computation():
+    # hand computation: day 0 censored -> no day at risk; day 0 competing -> counted on day 1;
+    # day 31 outcome -> days 1..31; day 60 censored (lost) -> 1..60; day 61 competing -> 1..61;
+    # day 90 planned end (not lost) -> 1..90 for the outcome, 1..89 for the censoring model
+    t, s = [0, 0, 31, 60, 61, 90], [0, 2, 1, 0, 2, 0]
+    lost = [True, False, False, True, False, False]
+    d, e = days_at_risk(t, s, "outcome")
+    np.testing.assert_array_equal(d, [0, 1, 31, 60, 61, 90])
+    np.testing.assert_array_equal(e, [0, 0, 1, 0, 0, 0])
+    d, e = days_at_risk(t, s, "competing")
+    np.testing.assert_array_equal(d, [0, 1, 30, 60, 61, 90])
+    np.testing.assert_array_equal(e, [0, 1, 0, 0, 1, 0])
+    d, e = days_at_risk(t, s, "censoring", lost)
+    np.testing.assert_array_equal(d, [0, 0, 30, 60, 60, 89])
+    np.testing.assert_array_equal(e, [0, 0, 0, 1, 0, 0])
 
 
-def test_pooled_logistic_equals_statsmodels_glm():
-    # reference: statsmodels GLM Binomial with freq_weights on the explicit person-period table
+def test_pooled_logistic_equals_statsmodels_glm_on_person_days():
+    # reference: statsmodels GLM Binomial with freq_weights on the explicit person-DAY table
+    # (one row per person and day at risk, the period's basis row on each day): the exact
+    # day-level risk set, built here by np.repeat independently of the implicit fit
     rng = np.random.default_rng(3)
-    n, K = 1500, 12
+    n, K = 400, 8
     X = rng.normal(size=(n, 2))
     a = rng.integers(0, 2, n)
-    t = rng.integers(0, 361, n).astype(float)
+    t = rng.integers(0, K * P + 1, n).astype(float)
     s = rng.choice([0, 1, 2], n, p=[0.5, 0.3, 0.2])
     f = rng.integers(0, 4, n)
     B = time_basis(K)
-    model = PooledLogistic().fit(B, X, a, last_period(t, s, P), s == 1, f)
+    days, event = days_at_risk(t, s, "outcome")
+    model = PooledLogistic().fit(B, X, a, days, event, f, P)
     assert model.converged_
-    pp = person_period(t, s, P)
-    r, k = pp["row"], pp["period"]
+    d = days.astype(int)
+    r = np.repeat(np.arange(n), d)
+    day = np.arange(r.size) - np.repeat(np.cumsum(d) - d, d) + 1  # 1..d_i
+    k = (day - 1) // P
+    y = (event[r] & (day == d[r])).astype(float)
     design = np.column_stack([B[k], a[r, None] * B[k], X[r]])
-    ref = sm.GLM(pp["outcome"], design, family=sm.families.Binomial(), freq_weights=f[r]).fit(
-        tol=1e-12)
+    ref = sm.GLM(y, design, family=sm.families.Binomial(), freq_weights=f[r]).fit(tol=1e-12)
     treated = np.column_stack([B[k], B[k], X[r]])
-    np.testing.assert_allclose(model.predict_hazard(X, 1)[r, k], ref.predict(treated), atol=1e-9)
+    np.testing.assert_allclose(model.predict_hazard(X, 1)[r, k], ref.predict(treated),
+                               rtol=1e-7, atol=1e-12)
     assert model.loglik_ == pytest.approx(ref.llf, rel=1e-9)
 
 
-def test_saturated_gformula_equals_aalen_johansen():
-    # fact of the method: with one indicator per period, no covariates and events at period ends,
-    # the discrete-time hazards are d_k / n_k and the g-formula cumulative incidence is the
-    # Aalen–Johansen estimate at the period ends
+def test_daily_saturated_gformula_equals_aalen_johansen():
+    # fact of the method: with one-day periods, one indicator per day and no covariates, the
+    # daily hazards are d_k / n_k (competing: among those without the outcome that day) and the
+    # g-formula cumulative incidence is the Aalen–Johansen estimate (Aalen & Johansen 1978)
     rng = np.random.default_rng(8)
     n, K = 3000, 12
     a = rng.integers(0, 2, n)
-    t = (rng.integers(1, K + 1, n) * P).astype(float)
+    t = rng.integers(1, K + 1, n).astype(float)
     s = rng.choice([0, 1, 2], n, p=[0.5, 0.3, 0.2])
     f = rng.integers(0, 3, n)
     X0 = np.zeros((n, 0))
-    last = np.minimum(last_period(t, s, P), K - 1)
     B = time_basis(K, "saturated")
-    out = PooledLogistic().fit(B, X0, a, last, s == 1, f)
-    comp = PooledLogistic().fit(B, X0, a, last - (s == 1), s == 2, f)
+    out = PooledLogistic().fit(B, X0, a, *days_at_risk(t, s, "outcome"), f, 1)
+    comp = PooledLogistic().fit(B, X0, a, *days_at_risk(t, s, "competing"), f, 1)
+    days = np.arange(0, K + 1)
     for g in (0, 1):
-        F = cumulative_incidence(out.predict_hazard(X0, g), comp.predict_hazard(X0, g))[0]
+        F = incidence_at(out.predict_hazard(X0[:1], g), comp.predict_hazard(X0[:1], g), days, 1)
         m = a == g
         times, cif, _ = aalen_johansen(t[m], s[m], f[m])
-        np.testing.assert_allclose(F, step_at(times, cif, np.arange(1, K + 1) * P), atol=1e-10)
+        np.testing.assert_allclose(F[0], step_at(times, cif, days), atol=1e-10)
 
 
-def test_cumulative_incidence_and_interpolation_hand_computation():
-    # hand computation: constant hazards h = 0.1, c = 0.2 over 3 periods
+def test_incidence_at_hand_computation():
+    # hand computation: daily hazards h = 0.1 (outcome), c = 0.2 (competing), q = 0.72
     h, c = np.full((1, 3), 0.1), np.full((1, 3), 0.2)
     q = 0.9 * 0.8
-    np.testing.assert_allclose(cumulative_incidence(h, c)[0], [0.1, 0.1 + 0.1 * q,
-                                                                0.1 + 0.1 * q + 0.1 * q * q])
-    np.testing.assert_allclose(cumulative_incidence(h)[0], 1 - 0.9 ** np.arange(1, 4))
-    F = np.array([0.1, 0.3, 0.4])
-    np.testing.assert_allclose(at_days(F, [0, 15, 30, 45, 90, 120], P),
-                               [0, 0.05, 0.1, 0.2, 0.4, 0.4])
-    # a last period cut short at day 70: it ends there
-    np.testing.assert_allclose(at_days(F, [65, 70, 90], P, last_end=70), [0.35, 0.4, 0.4])
+    by_day = np.cumsum(0.1 * q ** np.arange(6))
+    np.testing.assert_allclose(incidence_at(h, c, [0, 1, 2, 3], 1)[0], [0, *by_day[:3]])
+    # two-day periods: the same hazards every day give the same days; a day past the last
+    # period stays at the end of follow-up
+    np.testing.assert_allclose(incidence_at(h, c, [0, 1, 3, 6, 9], 2)[0],
+                               [0, by_day[0], by_day[2], by_day[5], by_day[5]])
+    np.testing.assert_allclose(incidence_at(h, None, [1, 2, 4], 2)[0], 1 - 0.9 ** np.array([1, 2, 4]))
+    # a hazard changing between periods: h = 0.1 on days 1-2, 0.3 on days 3-4
+    h2 = np.array([[0.1, 0.3]])
+    np.testing.assert_allclose(incidence_at(h2, None, [3, 4], 2)[0],
+                               [1 - 0.81 * 0.7, 1 - 0.81 * 0.49])
 
 
 def test_spline_basis_shape():
@@ -147,18 +159,6 @@ def _simulate(n, seed, K=24):
     return cohort, truth
 
 
-def _sample(cohort, protocol, freq=None):
-    # the propensity: a plain statsmodels logit (reference library), weights written out
-    a = cohort["treated"].to_numpy(float)
-    X = cohort[["x"]].to_numpy(float)
-    f = np.ones(len(a)) if freq is None else np.asarray(freq, float)
-    Z = sm.add_constant(X)
-    e = sm.GLM(a, Z, family=sm.families.Binomial(), freq_weights=f).fit().predict(Z)
-    w = {"ATE": np.where(a == 1, 1 / e, 1 / (1 - e)), "ATT": np.where(a == 1, 1, e / (1 - e)),
-         "ATO": np.where(a == 1, 1 - e, e)}
-    return AnalysisSample(cohort, protocol, X, ("x",), a, f, e, {k: w[k] for k in protocol.estimands})
-
-
 @pytest.fixture(scope="module")
 def simulated():
     return _simulate(3000, 1)
@@ -175,7 +175,7 @@ def test_adjusted_risk_differences_near_truth(simulated, censoring_weights):
     # the adjusted ATE risk differences lie near the truth, the unadjusted one does not
     cohort, truth = simulated
     prot = _protocol(estimands=("ATE",), censoring_weights=censoring_weights)
-    rows, _ = time_to_event_estimates(_sample(cohort, prot), "event")
+    rows, _ = time_to_event_estimates(analysis_sample(cohort, prot), "event")
     true_rd = {h: truth[1][h] - truth[0][h] for h in (180, 365, 720)}
     for method in ("ipw", "standardization", "doubly_robust"):
         got = _rd(rows, method, "ATE")
@@ -188,7 +188,7 @@ def test_adjusted_risk_differences_near_truth(simulated, censoring_weights):
 def test_rows_and_curves_follow_the_contract(simulated):
     cohort, _ = simulated
     prot = _protocol(estimands=("ATE", "ATT", "ATO"))
-    rows, curves = time_to_event_estimates(_sample(cohort, prot), "event")
+    rows, curves = time_to_event_estimates(analysis_sample(cohort, prot), "event")
     df = pd.DataFrame(rows)
     keys = {"outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
             "comparator", "estimate", "n", "events"}
@@ -231,9 +231,9 @@ def test_frequency_weights_equal_duplicated_rows(simulated):
     cohort = cohort.iloc[:800].reset_index(drop=True)
     prot = _protocol(estimands=("ATE",))
     f = np.random.default_rng(9).integers(0, 3, len(cohort))
-    rows_f, curves_f = time_to_event_estimates(_sample(cohort, prot, f), "event")
+    rows_f, curves_f = time_to_event_estimates(analysis_sample(cohort, prot, f), "event")
     dup = cohort.loc[cohort.index.repeat(f)].reset_index(drop=True)
-    rows_d, curves_d = time_to_event_estimates(_sample(dup, prot), "event")
+    rows_d, curves_d = time_to_event_estimates(analysis_sample(dup, prot), "event")
     est_f = [r["estimate"] for r in rows_f]
     est_d = [r["estimate"] for r in rows_d]
     np.testing.assert_allclose(est_f, est_d, rtol=1e-6, atol=1e-9)
@@ -251,7 +251,7 @@ def test_doubly_robust_pieces():
     s = rng.choice([0, 1, 2], n, p=[0.5, 0.3, 0.2])
     a = rng.integers(0, 2, n)
     f = np.ones(n)
-    cens = censoring_at(t, s, a, f, (100, 300), P)
+    cens = censoring_at(t, s, a, f, (100, 300))
     zero = {g: np.zeros((n, 2)) for g in (0, 1)}
     dr = aipw_risk(t, s, a, f, f, zero, cens, (100, 300))
     _, ipcw = ipcw_incidence(t, s, a, f, cens, [0, 100], (100, 300))
@@ -270,7 +270,8 @@ def test_censoring_model_and_notes():
     cohort, _ = _simulate(600, 4)
     t, s = outcome_arrays(cohort, "event")
     a = cohort.treated.to_numpy()
-    models = hazard_models(t, s, a, cohort[["x"]].to_numpy(), None, P, 24, True, censoring=True)
+    lost = losses(cohort, "event", np.ones(len(cohort)), 720)
+    models = hazard_models(t, s, a, cohort[["x"]].to_numpy(), None, P, 720, True, lost)
     assert set(models) == {"outcome", "competing", "censoring"}
     assert all(m.converged_ for m in models.values())
     p_on, p_off = _protocol(censoring_weights=True), _protocol()
@@ -297,7 +298,7 @@ def test_unadjusted_only_without_competing_events(simulated):
     col = columns.end_reason("event")
     cohort[col] = cohort[col].replace({"competing": "coverage_end"})
     prot = _protocol(methods=(), competing=False, hazard_ratio=False)
-    rows, curves = time_to_event_estimates(_sample(cohort, prot), "event")
+    rows, curves = time_to_event_estimates(analysis_sample(cohort, prot), "event")
     assert {r["method"] for r in rows} == {"unadjusted"}
     assert {r["measure"] for r in rows} == {"risk", "risk_difference", "risk_ratio", "rate"}
     from lifelines import KaplanMeierFitter
