@@ -26,6 +26,23 @@ def censoring_assumption(protocol: Any) -> str:
             "(analysis.censoring_weights is false).")
 
 
+def methods_note(protocol: Any) -> str:
+    """How the model-based time-to-event methods of the protocol are computed, for the report's
+    analysis plan ('' when it uses neither)."""
+    a, o = protocol.analysis, protocol.outcomes
+    out = []
+    models = {"standardization", "doubly_robust"} & set(a.methods) or a.censoring_weights
+    if o.time_to_event() and models:
+        out.append("Hazards are pooled logistic models of the daily hazard on the exact "
+                   f"day-level risk set, constant within periods of {a.period_days} days.")
+    if "doubly_robust" in a.methods:
+        out.append("The doubly robust estimates (time-to-event and measured outcomes) use the "
+                   "untruncated propensity in their augmentation term, which keeps them doubly "
+                   "robust" + ("; weight truncation applies to the IPW estimates only."
+                               if a.weights.truncate else "."))
+    return " ".join(out)
+
+
 def hazard_ratio_label(protocol: Any) -> str:
     """'cause-specific hazard ratio' when the protocol has competing events, else 'hazard ratio'."""
     return "cause-specific hazard ratio" if protocol.outcomes.competing else "hazard ratio"

@@ -3,7 +3,7 @@
 Each person has a confounder ``x``; the arm follows a logistic propensity in ``x``. On every day
 of follow-up the outcome happens with probability ``h1`` (first), then the competing event with
 probability ``h2``; the coverage ends (censoring) with probability ``c`` after both. All three are
-logistic in ``x`` (and the arm for ``h1``), constant over time, so the pooled logistic model of a
+logistic in ``x`` (and the arm for ``h1``; optionally in :math:`x^2`), constant over time, so the pooled logistic model of a
 daily hazard with any time basis is correctly specified and a person's cumulative incidence by
 day ``d`` has the closed form
 
@@ -36,11 +36,12 @@ class Design:
     competing: tuple[float, float] = (-9.2, 0.4)  # intercept, x
     censoring: tuple[float, float] = (-7.7, 0.9)  # intercept, x; None-like: intercept -inf
     propensity: tuple[float, float] = (0.0, 0.8)
+    outcome_x2: float = 0.0  # a term in x squared (an outcome model linear in x then misses it)
 
 
 def hazards(design: Design, x, arm):
     b = design.outcome
-    h1 = expit(b[0] + b[1] * x + b[2] * arm)
+    h1 = expit(b[0] + b[1] * x + design.outcome_x2 * x ** 2 + b[2] * arm)
     h2 = expit(design.competing[0] + design.competing[1] * x)
     return h1, h2
 

@@ -17,7 +17,10 @@ Methods (each estimand of the protocol; ``unadjusted`` once, with ``estimand`` e
   with competing events (:mod:`emulant.estimation.cox`, with the caution on hazard ratios).
 * ``standardization``: the parametric g-formula with pooled logistic hazards
   (:mod:`emulant.estimation.pooled_logistic`).
-* ``doubly_robust``: the augmented IPW risk at each horizon (:func:`emulant.estimation.tte_weighting.aipw_risk`).
+* ``doubly_robust``: the augmented IPW risk at each horizon (:func:`emulant.estimation.tte_weighting.aipw_risk`),
+  with the estimand's weights from the untruncated propensity (``analysis.weights.truncate``
+  applies to the IPW estimates only), as for measured outcomes
+  (:mod:`emulant.estimation.measured`).
 """
 
 from __future__ import annotations
@@ -45,6 +48,7 @@ from emulant.estimation.tte_weighting import (
     standardized_risks,
     target_weights,
 )
+from emulant.models.weights import estimand_weights
 
 CONTRAST = "intention_to_treat"
 STATUS = {"outcome": OUTCOME, "competing": COMPETING}
@@ -229,7 +233,10 @@ def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict
                 rows += c.contrast_rows(est, "standardization", risk)
                 curve_rows += c.curve_rows(est, "standardization", curves)
             if "doubly_robust" in methods:
+                # the untruncated propensity, as for measured outcomes: truncated weights in
+                # the augmentation term would lose the double robustness
+                w_dr = c.f * estimand_weights(c.a, c.e, est, stabilize=False)
                 F_h = {g: incidence[g][:, c.grid.size:] for g in (0, 1)}
-                risk = aipw_risk(c.time, c.status, c.a, w, v, F_h, cens, c.horizons)
+                risk = aipw_risk(c.time, c.status, c.a, w_dr, v, F_h, cens, c.horizons)
                 rows += c.contrast_rows(est, "doubly_robust", risk)
     return rows, curve_rows

@@ -11,7 +11,7 @@ import pandas as pd
 from emulant.protocol import MeasuredOutcome, Protocol
 from emulant.report import disclosure as dc
 from emulant.report import fmt
-from emulant.wording import censoring_assumption
+from emulant.wording import censoring_assumption, methods_note
 
 COMPONENTS = (
     ("eligibility", "Eligibility criteria"),
@@ -93,7 +93,8 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
                      f"{', '.join(str(h) for h in a.horizons_days)} days."
                      f"{' Hazard ratio: yes.' if a.hazard_ratio else ''} Bootstrap: "
                      f"{a.bootstrap.replicates} replicates, seed {a.bootstrap.seed}, "
-                     f"{a.bootstrap.interval} intervals."),
+                     f"{a.bootstrap.interval} intervals."
+                     + (f" {methods_note(p)}" if methods_note(p) else "")),
     }
     if design:
         did["analysis"] += " This is the outcome-blind design report: no outcome was analysed."

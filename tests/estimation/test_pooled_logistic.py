@@ -21,7 +21,7 @@ from emulant.estimation.pooled_logistic import (
 from emulant.estimation.survival import SurvivalError, aalen_johansen, step_at
 from emulant.estimation.tte import losses, outcome_arrays, time_to_event_estimates
 from emulant.estimation.tte_weighting import aipw_risk, censoring_at, ipcw_incidence, target_weights
-from emulant.wording import censoring_assumption, hazard_ratio_label
+from emulant.wording import censoring_assumption, hazard_ratio_label, methods_note
 
 P = 30
 
@@ -277,6 +277,9 @@ def test_censoring_model_and_notes():
     p_on, p_off = _protocol(censoring_weights=True), _protocol()
     assert "pooled logistic" in censoring_assumption(p_on)
     assert "within each arm" in censoring_assumption(p_off)
+    assert "day-level" in methods_note(p_off)
+    assert "untruncated propensity" in methods_note(p_off)
+    assert methods_note(_protocol(methods=("ipw",))) == ""
     assert hazard_ratio_label(p_off) == "cause-specific hazard ratio"
     assert hazard_ratio_label(_protocol(competing=False)) == "hazard ratio"
 
