@@ -206,6 +206,14 @@ def cmd_where(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_schema(args: argparse.Namespace) -> int:
+    """Print the protocol's JSON Schema (generated from the protocol's key table)."""
+    from emulant.protocol.schema import schema_text
+
+    sys.stdout.write(schema_text())
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="emulant",
@@ -241,6 +249,14 @@ def build_parser() -> argparse.ArgumentParser:
     wh.add_argument("--config", default="config/config.yaml", metavar="FILE",
                     help="the run configuration (default config/config.yaml)")
     wh.set_defaults(func=cmd_where)
+
+    sc = sub.add_parser("schema", help="print the protocol's JSON Schema (for editors)",
+                        description="Print the JSON Schema of the protocol file. Save it beside "
+                                    "your protocol and start the protocol with the line "
+                                    "'# yaml-language-server: $schema=protocol.schema.json' so an "
+                                    "editor that reads it completes keys and flags errors. "
+                                    "Every key is described in docs/protocol.md.")
+    sc.set_defaults(func=cmd_schema)
     return parser
 
 

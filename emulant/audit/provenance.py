@@ -22,6 +22,7 @@ import pandas as pd
 from emulant import __version__
 from emulant.extract import sha256_file
 from emulant.protocol import Protocol
+from emulant.protocol.as_input import as_input
 
 PACKAGES = ("emulant", "snakemake", "duckdb", "pandas", "pyarrow", "numpy", "scipy", "statsmodels",
             "lifelines", "scikit-learn", "jinja2", "matplotlib", "pydantic", "pyyaml")
@@ -107,7 +108,8 @@ def build_manifest(protocol: Protocol, results_dir: str | Path, reports_dir: str
         "python": platform.python_version(),
         "platform": platform.platform(),
         "packages": package_versions(),
-        "protocol": {"path": protocol.path, "sha256": protocol.sha256, "text": protocol.text},
+        "protocol": {"path": protocol.path, "sha256": protocol.sha256, "text": protocol.text,
+                     "as_parsed": as_input(protocol)},
         "protocol_sha256": protocol.sha256,
         "inputs": inputs,
         "seeds": {"bootstrap_seed": b.seed, "bootstrap_replicates": b.replicates},

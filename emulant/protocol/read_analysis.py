@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from emulant.protocol.collector import Collector
+from emulant.protocol.keys import known
 from emulant.protocol.model import (
     CONTRASTS,
     ESTIMANDS,
@@ -37,9 +38,9 @@ def read_estimands(c: Collector, top: dict, strategies: Strategies | None = None
 
 def read_analysis(c: Collector, node: Any, follow: FollowUp) -> Analysis:
     """``analysis``: propensity, weights, horizons, methods, periods, censoring weights, bootstrap, balance."""
-    a = c.mapping(node, "analysis", ("propensity", "weights", "horizons_days", "methods", "hazard_ratio", "period_days", "censoring_weights", "bootstrap", "balance"))
-    p = c.mapping(a.get("propensity"), "analysis.propensity", ("model", "continuous"))
-    w = c.mapping(a.get("weights"), "analysis.weights", ("stabilize", "truncate"))
+    a = c.mapping(node, "analysis", known("analysis"))
+    p = c.mapping(a.get("propensity"), "analysis.propensity", known("analysis.propensity"))
+    w = c.mapping(a.get("weights"), "analysis.weights", known("analysis.weights"))
     trunc = w.get("truncate")
     if trunc is not None:
         if not (isinstance(trunc, list) and len(trunc) == 2 and all(isinstance(x, int | float) and not isinstance(x, bool) for x in trunc)
@@ -53,8 +54,8 @@ def read_analysis(c: Collector, node: Any, follow: FollowUp) -> Analysis:
         if h > follow.max_days:
             c.add("analysis.horizons_days", f"horizon {h} is beyond follow_up.max_days ({follow.max_days})")
     methods = tuple(m for m in (c.choice(x, f"analysis.methods[{i}]", METHODS, None) for i, x in enumerate(c.listing(a.get("methods"), "analysis.methods"))) if m and m != "unadjusted") if a.get("methods") is not None else ("ipw", "standardization", "doubly_robust")
-    b = c.mapping(a.get("bootstrap"), "analysis.bootstrap", ("replicates", "seed", "interval"))
-    bal = c.mapping(a.get("balance"), "analysis.balance", ("smd_threshold",))
+    b = c.mapping(a.get("bootstrap"), "analysis.bootstrap", known("analysis.bootstrap"))
+    bal = c.mapping(a.get("balance"), "analysis.balance", known("analysis.balance"))
     analysis = Analysis(
         Propensity(c.choice(p.get("model"), "analysis.propensity.model", ("logistic",), "logistic") or "logistic",
                    c.choice(p.get("continuous"), "analysis.propensity.continuous", ("spline", "quadratic", "linear"), "spline") or "spline"),
@@ -73,6 +74,6 @@ def read_analysis(c: Collector, node: Any, follow: FollowUp) -> Analysis:
 
 def read_report(c: Collector, node: Any) -> ReportSettings:
     """``report``: the smallest count shown."""
-    r = c.mapping(node, "report", ("min_cell",))
+    r = c.mapping(node, "report", known("report"))
     report = ReportSettings(c.integer(r.get("min_cell"), "report.min_cell", 5, 1) or 5)
     return report

@@ -11,6 +11,7 @@ from typing import Any
 import pandas as pd
 
 from emulant.protocol.collector import NAME_PATTERN, Collector
+from emulant.protocol.keys import known, required
 from emulant.protocol.model import DEATH, Concept, Criterion, Eligibility
 
 
@@ -59,7 +60,7 @@ def read_concepts(c: Collector, node: Any, base: Path) -> dict[str, Concept]:
             continue
         if not NAME_PATTERN.match(str(name)):
             c.add(key, "a concept name must be letters, digits and underscores, starting with a letter")
-        d = c.mapping(spec, key, ("source", "codes", "match", "where"), required=("source", "codes"))
+        d = c.mapping(spec, key, known("concepts.*"), required("concepts.*"))
         source = c.text(d.get("source"), f"{key}.source")
         if source in ("persons", "coverage", "deaths"):
             c.add(f"{key}.source", f"'{source}' holds no codes; use an event source (dispensings, diagnoses, measurements …)")
@@ -89,7 +90,7 @@ def read_criteria(c: Collector, node: Any, key: str, concepts) -> tuple[Criterio
     out = []
     for i, item in enumerate(c.listing(node, key)):
         k = f"{key}[{i}]"
-        d = c.mapping(item, k, ("concept", "window"), required=("concept", "window"))
+        d = c.mapping(item, k, known(f"{key}[]"), required(f"{key}[]"))
         name = need_concept(c, concepts, d.get("concept"), f"{k}.concept") if d.get("concept") else ""
         w = c.window(d.get("window"), f"{k}.window") or (0, 0)
         out.append(Criterion(name, w))
@@ -98,12 +99,12 @@ def read_criteria(c: Collector, node: Any, key: str, concepts) -> tuple[Criterio
 
 def read_eligibility(c: Collector, node: Any, concepts: Mapping[str, Concept]) -> Eligibility:
     """``eligibility``: the entry window, age, coverage before time zero, requirements and exclusions."""
-    e = c.mapping(node, "eligibility", ("entry", "age", "coverage_before_days", "require", "exclude"), required=("entry",))
-    entry = c.mapping(e.get("entry"), "eligibility.entry", ("start", "end"), required=("start", "end"))
+    e = c.mapping(node, "eligibility", known("eligibility"), required("eligibility"))
+    entry = c.mapping(e.get("entry"), "eligibility.entry", known("eligibility.entry"), required("eligibility.entry"))
     es, ee = c.date(entry.get("start"), "eligibility.entry.start"), c.date(entry.get("end"), "eligibility.entry.end")
     if es and ee and es > ee:
         c.add("eligibility.entry", f"start {es} is after end {ee} (expected start <= end)")
-    age = c.mapping(e.get("age"), "eligibility.age", ("min", "max"))
+    age = c.mapping(e.get("age"), "eligibility.age", known("eligibility.age"))
     amin = c.integer(age.get("min"), "eligibility.age.min", None, 0)
     amax = c.integer(age.get("max"), "eligibility.age.max", None, 0)
     if amin is not None and amax is not None and amin > amax:

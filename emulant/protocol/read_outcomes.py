@@ -6,6 +6,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from emulant.protocol.collector import NAME_PATTERN, Collector
+from emulant.protocol.keys import known, required, table_path
 from emulant.protocol.model import (
     BUILTINS,
     KINDS,
@@ -22,7 +23,7 @@ from emulant.protocol.read_concepts import need_concept
 
 
 def read_measured(c: Collector, d: Any, key: str, concepts) -> MeasuredOutcome:
-    d = c.mapping(d, key, ("measure", "at_day", "tolerance_days", "change_from_baseline", "missing"), ("measure", "at_day"))
+    d = c.mapping(d, key, known(table_path(key)), required(table_path(key)))
     m = need_concept(c, concepts, d.get("measure"), f"{key}.measure") if d.get("measure") else ""
     if m in concepts and concepts[m].source != "measurements":
         c.add(f"{key}.measure", f"concept '{m}' has source '{concepts[m].source}'; a measured outcome needs source measurements")
@@ -49,11 +50,9 @@ def read_covariates(c: Collector, node: Any, concepts, section: str = "covariate
     out = []
     seen: set[str] = set(taken)
     tv = section == "time_varying"
-    known = ("name", "concept", "source", "window", "summary", "kind", "missing") if tv else \
-        ("name", "builtin", "attribute", "concept", "source", "window", "summary", "kind", "missing")
     for i, item in enumerate(c.listing(node, section)):
         k = f"{section}[{i}]"
-        d = c.mapping(item, k, known, required=("name",))
+        d = c.mapping(item, k, known(f"{section}[]"), required(f"{section}[]"))
         name = c.text(d.get("name"), f"{k}.name")
         if name and not NAME_PATTERN.match(name):
             c.add(f"{k}.name", "a covariate name must be letters, digits and underscores, starting with a letter")
@@ -65,7 +64,7 @@ def read_covariates(c: Collector, node: Any, concepts, section: str = "covariate
         kinds = [x for x in sources if d.get(x) is not None]
         if len(kinds) != 1:
             c.add(k, f"give exactly one of {', '.join(sources)} (got {', '.join(kinds) or 'none'})")
-        builtin = c.choice(d.get("builtin"), f"{k}.builtin", BUILTINS, None)
+        builtin = None if tv else c.choice(d.get("builtin"), f"{k}.builtin", BUILTINS, None)
         concept = need_concept(c, concepts, d["concept"], f"{k}.concept") if d.get("concept") is not None else None
         source = c.text(d.get("source"), f"{k}.source") if d.get("source") is not None else None
         window = c.window(d.get("window"), f"{k}.window")
@@ -94,14 +93,14 @@ def read_covariates(c: Collector, node: Any, concepts, section: str = "covariate
         if tv and window is not None and window[1] > 0:
             c.add(f"{k}.window", f"a window must end on or before day 0 (the period's first day), got {list(window)}: a record after the day it describes would let the future decide the past")
         missing = c.choice(d.get("missing"), f"{k}.missing", ("indicator",) if tv else ("indicator", "exclude"), "indicator")
-        attribute = c.text(d.get("attribute"), f"{k}.attribute") if d.get("attribute") is not None else None
+        attribute = c.text(d.get("attribute"), f"{k}.attribute") if d.get("attribute") is not None and not tv else None
         out.append(Covariate(name, builtin, attribute, concept, source, window, summary, kind, missing or "indicator"))
     return tuple(out)
 
 
 def read_outcomes(c: Collector, node: Any, concepts: Mapping[str, Concept], follow: FollowUp) -> Outcomes:
     """``outcomes``: primary, competing, secondary and negative-control outcomes."""
-    o = c.mapping(node, "outcomes", ("primary", "competing", "secondary", "negative_controls"), required=("primary",))
+    o = c.mapping(node, "outcomes", known("outcomes"), required("outcomes"))
     outcomes = Outcomes(
         primary=read_outcome(c, o.get("primary"), "outcomes.primary", concepts) if o.get("primary") is not None else "",
         competing=tuple(need_concept(c, concepts, x, f"outcomes.competing[{i}]") for i, x in enumerate(c.listing(o.get("competing"), "outcomes.competing"))),

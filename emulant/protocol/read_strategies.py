@@ -6,20 +6,21 @@ from collections.abc import Mapping
 from typing import Any
 
 from emulant.protocol.collector import NAME_PATTERN, Collector
+from emulant.protocol.keys import known, required
 from emulant.protocol.model import Arm, Concept, FollowUp, Strategies, Sustain
 from emulant.protocol.read_concepts import need_concept
 
 
 def read_strategies(c: Collector, node: Any, concepts: Mapping[str, Concept]) -> Strategies:
     """``strategies``: the arms, the treated arm, the washout and the same-day rule."""
-    st = c.mapping(node, "strategies", ("arms", "treated", "washout_days", "same_day"), required=("arms", "treated"))
+    st = c.mapping(node, "strategies", known("strategies"), required("strategies"))
     arm_node = st.get("arms") or {}
     if not isinstance(arm_node, dict):
         c.add("strategies.arms", "expected a mapping of arm names")
         arm_node = {}
     specs = {}
     for name, spec in arm_node.items():
-        specs[str(name)] = c.mapping(spec, f"strategies.arms.{name}", ("initiate", "sustain"), required=("initiate",))
+        specs[str(name)] = c.mapping(spec, f"strategies.arms.{name}", known("strategies.arms.*"), required("strategies.arms.*"))
         if not NAME_PATTERN.match(str(name)):
             c.add(f"strategies.arms.{name}", "an arm name must be letters, digits and underscores")
     starts = [Arm(str(n), need_concept(c, concepts, d.get("initiate"), f"strategies.arms.{n}.initiate") if d.get("initiate") else "")
@@ -41,7 +42,7 @@ def read_sustain(c: Collector, node: Any, arm: str, arms: list[Arm],
     """``strategies.arms.<arm>.sustain``: ``gap_days`` (required, >= 0) and ``switch`` (concepts;
     default: the other arms' initiating concepts), CONTRACTS §5b."""
     key = f"strategies.arms.{arm}.sustain"
-    d = c.mapping(node, key, ("gap_days", "switch"), required=("gap_days",))
+    d = c.mapping(node, key, known("strategies.arms.*.sustain"), required("strategies.arms.*.sustain"))
     gap = c.integer(d.get("gap_days"), f"{key}.gap_days", 0, 0) or 0
     if d.get("switch") is None:
         switch = tuple(a.initiate for a in arms if a.name != arm and a.initiate)
@@ -56,7 +57,7 @@ def read_sustain(c: Collector, node: Any, arm: str, arms: list[Arm],
 
 def read_follow_up(c: Collector, node: Any) -> FollowUp:
     """``follow_up``: the longest follow-up and the administrative end."""
-    f = c.mapping(node, "follow_up", ("max_days", "administrative_end"))
+    f = c.mapping(node, "follow_up", known("follow_up"))
     follow = FollowUp(c.integer(f.get("max_days"), "follow_up.max_days", 1095, 1) or 1095,
                       c.date(f.get("administrative_end"), "follow_up.administrative_end"))
     return follow

@@ -16,24 +16,23 @@ from typing import Any
 import yaml
 
 from emulant.protocol.collector import ID_PATTERN, Collector
+from emulant.protocol.keys import known, required
 from emulant.protocol.model import Protocol, ProtocolError, Study
 from emulant.protocol.read_analysis import read_analysis, read_estimands, read_report
 from emulant.protocol.read_concepts import read_concepts, read_eligibility
 from emulant.protocol.read_outcomes import read_covariates, read_outcomes
 from emulant.protocol.read_strategies import read_follow_up, read_strategies
 
-TOP_KEYS = ("study", "concepts", "eligibility", "strategies", "follow_up", "outcomes", "covariates",
-            "time_varying", "estimands", "contrasts", "analysis", "report", "extract_columns")
-TRIAL_COMPONENTS = ("eligibility", "strategies", "assignment", "time_zero", "follow_up", "outcome", "contrast", "analysis")
+TRIAL_COMPONENTS = known("study.target_trial")
 
 
 def read_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | None = None, text: str = "") -> Protocol:
     """Validate a protocol mapping (the YAML's content) and return the typed :class:`Protocol`."""
     c = Collector()
     base = Path(base_dir)
-    top = c.mapping(data, "", TOP_KEYS, required=("study", "concepts", "eligibility", "strategies", "outcomes"))
+    top = c.mapping(data, "", known(""), required(""))
 
-    s = c.mapping(top.get("study"), "study", ("id", "title", "question", "target_trial"), required=("id",))
+    s = c.mapping(top.get("study"), "study", known("study"), required("study"))
     sid = c.text(s.get("id"), "study.id", "study")
     if not ID_PATTERN.match(sid):
         c.add("study.id", f"expected lower-case letters, digits and '-' only ([a-z0-9-]+), got {sid!r}")

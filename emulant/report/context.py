@@ -10,9 +10,8 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-import yaml
-
 from emulant.protocol import Protocol
+from emulant.protocol.as_input import as_input_yaml
 from emulant.report import disclosure as dc
 from emulant.report import figures, fmt, narrative, results, tables, target
 from emulant.report.load import read_results
@@ -94,18 +93,6 @@ def codelists(p: Protocol) -> list[dict]:
     return out
 
 
-def protocol_yaml(p: Protocol) -> str:
-    """The protocol as parsed (defaults filled in) as YAML; pairs shown as mappings, code
-    descriptions left to the code-list appendix."""
-    d = p.as_dict()
-    d["study"]["target_trial"] = {k: v for k, v in d["study"].get("target_trial") or []}
-    for c in (d.get("concepts") or {}).values():
-        c["where"] = {k: v for k, v in c.get("where") or []}
-        if c.get("descriptions"):
-            c["descriptions"] = "see the code-list appendix"
-    return yaml.safe_dump(d, sort_keys=False, allow_unicode=True, width=96)
-
-
 def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | None = None,
                   comparison: dict | None = None, design: bool = False) -> dict[str, Any]:
     """Everything the template shows, as strings, from the results files and the given dicts."""
@@ -170,7 +157,7 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
     ctx["trial"] = narrative.emulation_rows(p, att, ctx["bootstrap"], design)
     ctx["assumptions"] = narrative.assumptions(p, ctx, design)
     ctx["manifest"] = manifest_context(manifest) if manifest else None
-    ctx["protocol_yaml"] = protocol_yaml(p)
+    ctx["protocol_yaml"] = as_input_yaml(p)
     ctx["codelists"] = codelists(p)
 
     present = {"question", "target-trial", "assumptions", "manifest", "protocol", "codelists"}
