@@ -1,5 +1,6 @@
 """The ``emulant`` command: check a protocol against an extract, write the invented demo extract,
-and say where a run's results and reports are.
+say where a run's results and reports are, draft a protocol from an extract, print the protocol's
+JSON Schema.
 
 Every error a user can cause is printed as a list of one-line problems and the command exits 2;
 no traceback reaches the terminal. An unexpected failure is printed in one line naming what was
@@ -206,6 +207,31 @@ def cmd_where(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_draft(args: argparse.Namespace) -> int:
+    """Check the extract and write a commented first protocol draft from it."""
+    from emulant.extract import ExtractError
+    from emulant.extract.draft import write_draft
+
+    out = Path(args.out)
+    if out.exists() and not args.force:
+        _problems("draft", [f"--out: {out} exists; choose another file or pass --force"])
+        return EXIT_PROBLEMS
+    if args.min_cell < 1 or args.prefix_length < 1:
+        _problems("draft", ["--min-cell and --prefix-length: expected whole numbers >= 1"])
+        return EXIT_PROBLEMS
+    try:
+        summary = _stage(f"drafting a protocol from {args.extract}",
+                         lambda: write_draft(args.extract, out, args.min_cell, args.prefix_length, _settings(args)),
+                         (ExtractError,))
+    except ExtractError as exc:
+        _problems(f"extract {args.extract}", exc.problems)
+        return EXIT_PROBLEMS
+    print(f"Wrote the protocol draft {out} ({len(summary['check']['tables'])} tables, "
+          f"{summary['persons']:,} persons). Fill in every `codes: []`, then run:")
+    print(f"  emulant check --extract {args.extract} --protocol {out}")
+    return EXIT_OK
+
+
 def cmd_schema(args: argparse.Namespace) -> int:
     """Print the protocol's JSON Schema (generated from the protocol's key table)."""
     from emulant.protocol.schema import schema_text
@@ -218,7 +244,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="emulant",
         description="Emulate a target trial from registry-style extracts. The workflow runs with "
-                    "snakemake; this command checks inputs and writes the demo extract.")
+                    "snakemake; this command checks inputs, writes the demo extract, drafts a protocol from an extract and prints the protocol's schema.")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
     ck = sub.add_parser("check", help="validate an extract and a protocol, print the attrition",
@@ -249,6 +275,25 @@ def build_parser() -> argparse.ArgumentParser:
     wh.add_argument("--config", default="config/config.yaml", metavar="FILE",
                     help="the run configuration (default config/config.yaml)")
     wh.set_defaults(func=cmd_where)
+
+    dr = sub.add_parser("draft", help="write a first protocol draft from an extract",
+                        description="Check the extract, then write a commented protocol draft: the "
+                                    "tables, columns and date ranges found, each event source's most "
+                                    "frequent code prefixes (only those held by at least --min-cell "
+                                    "persons), and the two-arm initiators design with a placeholder "
+                                    "for every required key. Fill in the concepts' codes, then run "
+                                    "'emulant check'.")
+    dr.add_argument("--extract", required=True, metavar="PATH", help="folder of the extract's tables")
+    dr.add_argument("--out", required=True, metavar="FILE", help="the protocol draft to write (not overwritten)")
+    dr.add_argument("--min-cell", type=int, default=5, metavar="N",
+                    help="show a code prefix only when at least N persons hold it (default 5)")
+    dr.add_argument("--prefix-length", type=int, default=3, metavar="K",
+                    help="characters of a code prefix (default 3)")
+    dr.add_argument("--force", action="store_true", help="overwrite --out when it exists")
+    dr.add_argument("--threads", type=int, metavar="N", help="DuckDB threads (default 2)")
+    dr.add_argument("--memory-limit", metavar="SIZE", help="DuckDB memory limit, e.g. 4GB")
+    dr.add_argument("--temp-dir", metavar="DIR", help="where DuckDB spills to disk")
+    dr.set_defaults(func=cmd_draft)
 
     sc = sub.add_parser("schema", help="print the protocol's JSON Schema (for editors)",
                         description="Print the JSON Schema of the protocol file. Save it beside "
