@@ -33,7 +33,11 @@ Unknown keys are errors, with the nearest known key suggested; `emulant check --
   `[]` is each item of a list.
 - Relative paths (code-list files) resolve against the protocol file's own folder.
 - Days are relative to time zero (day 0). A window `[a, b]` holds the records on days `a <= k <= b`.
-- Complete examples, one per design and kind of outcome: `config/protocols/`.
+- Complete examples, one per design and kind of outcome: `config/protocols/`, described with a
+  worked example in [designs.md](designs.md); the extract's tables in [extract.md](extract.md);
+  the files a run writes in [results.md](results.md).
+- A first draft from your own extract: `emulant draft --extract PATH --out FILE` (the tables,
+  date ranges and frequent code prefixes it finds, a placeholder for every required key).
 - Editors: `emulant schema > protocol.schema.json` writes the JSON Schema (also shipped as
   `emulant/protocol/protocol.schema.json`); a first line
   `# yaml-language-server: $schema=protocol.schema.json` makes editors that read it complete keys
