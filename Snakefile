@@ -20,6 +20,7 @@ include: "workflow/rules/report.smk"
 rule all:
     input:
         archived=result("archive.json"),
+        periods=person_time_results(),
 
 
 rule design:

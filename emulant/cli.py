@@ -106,19 +106,28 @@ def cmd_check(args: argparse.Namespace) -> int:
 
     def steps():
         from emulant.cohort import CohortError, build_cohort
+        from emulant.cohort.person_time import add_deviations, deviation_counts
 
         extract = open_extract(args.extract, protocol, _settings(args))
         try:
-            return build_cohort(extract, protocol, steps_only=True), None
+            if not protocol.per_protocol:
+                return build_cohort(extract, protocol, steps_only=True), None, None
+            # per protocol: the whole cohort (follow-up ends) and its deviation days
+            res = build_cohort(extract, protocol)
+            cohort = add_deviations(extract, protocol, res.cohort)
+            return res, deviation_counts(cohort, protocol), None
         except CohortError as exc:
-            return None, exc
+            return None, None, exc
 
-    cohort, error = _stage("running the eligibility steps", steps)
+    cohort, deviations, error = _stage("running the eligibility steps", steps)
     if error is not None:
         _problems("eligibility", getattr(error, "problems", None) or [str(error)])
         return EXIT_PROBLEMS
     print("\nAttrition (eligibility steps in order):")
     print(cohort.attrition.to_string(index=False))
+    if deviations is not None:
+        print("\nDeviations from the sustained strategies within follow-up, per arm:")
+        print(deviations.to_string(index=False))
     return EXIT_OK
 
 
@@ -250,7 +259,9 @@ def build_parser() -> argparse.ArgumentParser:
     ck = sub.add_parser("check", help="validate an extract and a protocol, print the attrition",
                         description="Validate the protocol and the extract (every problem listed "
                                     "at once), then run the eligibility steps alone and print "
-                                    "the attrition. Exit 0, or 2 when there is any problem.")
+                                    "the attrition. A protocol asking for per_protocol also gets, "
+                                    "per arm, how many stopped or switched within follow-up. "
+                                    "Exit 0, or 2 when there is any problem.")
     ck.add_argument("--extract", required=True, metavar="PATH", help="folder of the extract's tables")
     ck.add_argument("--protocol", required=True, metavar="FILE", help="the protocol YAML file")
     ck.add_argument("--save-check", metavar="FILE", help="also write the check as JSON (extract_check.json)")

@@ -8,6 +8,9 @@ cohort.parquet (one row per person):
     end_day__<o>, end_reason__<o>             -- every time-to-event outcome o (primary included)
     value__<m>, measured__<m>, baseline__<m>  -- every measured outcome m (value NaN when unmeasured)
     coverage_end_day                          -- last day of the merged coverage period holding day 0
+    stop_day, switch_day, deviation_day, deviation_reason   -- with per_protocol only (§5b)
+periods.parquet: person_id, arm, period, start_day, deviated, each time-varying covariate (and
+    <name>_missing where its value may be missing) -- with per_protocol only (§5g).
 weights.parquet: person_id, arm, propensity, weight_<ESTIMAND> for each estimand of the protocol.
 """
 
@@ -42,3 +45,13 @@ def baseline(measure: str) -> str:
 
 def weight(estimand: str) -> str:
     return f"weight_{estimand}"
+
+
+# person-time (CONTRACTS §5b, §5g): cohort.parquet gains these when per_protocol is asked for
+STOP_DAY = "stop_day"  # the day the supply ran out by more than gap_days (empty past max_days)
+SWITCH_DAY = "switch_day"  # the first day >= 1 with a record of a switch concept
+DEVIATION_DAY = "deviation_day"  # the earlier of the two, empty after end_day
+DEVIATION_REASON = "deviation_reason"  # stopped | switched (switched on a tie) | empty
+DEVIATION_REASONS = ("stopped", "switched")
+# periods.parquet: one row per person and period under per-protocol follow-up
+PERIOD_COLUMNS = ("person_id", "arm", "period", "start_day", "deviated")

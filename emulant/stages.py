@@ -102,8 +102,26 @@ def build_cohort(input: Any, output: Any, params: Any) -> None:
     extract = open_extract(_extract_dir(input), protocol, dict(params.duckdb))
     res = build(extract, protocol)
     log.info("attrition:\n%s", res.attrition.to_string(index=False))
+    cohort = res.cohort
+    if protocol.per_protocol:  # stop, switch and deviation days (CONTRACTS §5b)
+        from emulant.cohort.person_time import add_deviations, deviation_counts
+
+        cohort = add_deviations(extract, protocol, cohort)
+        log.info("deviations within follow-up:\n%s",
+                 deviation_counts(cohort, protocol).to_string(index=False))
     write_csv(output.attrition, res.attrition)
-    write_parquet(output.cohort, res.cohort)
+    write_parquet(output.cohort, cohort)
+
+
+def build_periods(input: Any, output: Any, params: Any) -> None:
+    from emulant.cohort.person_time import build_periods as build
+    from emulant.extract import open_extract
+
+    protocol = load_protocol(_protocol_path(input))
+    extract = open_extract(_extract_dir(input), protocol, dict(params.duckdb))
+    with atomic(output.periods) as tmp:
+        rows = build(extract, protocol, input.cohort, tmp)
+    log.info("periods.parquet: %d person-periods", rows)
 
 
 def fit_weights(input: Any, output: Any, params: Any) -> None:

@@ -27,7 +27,8 @@ from emulant.protocol.as_input import as_input
 PACKAGES = ("emulant", "snakemake", "duckdb", "pandas", "pyarrow", "numpy", "scipy", "statsmodels",
             "lifelines", "scikit-learn", "jinja2", "matplotlib", "pydantic", "pyyaml")
 RESULT_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weights.parquet",
-                "positivity.json", "balance.csv", "estimates.csv", "curves.csv", "bootstrap.json")
+                "positivity.json", "balance.csv", "estimates.csv", "curves.csv", "bootstrap.json",
+                "periods.parquet")
 ARCHIVED = ("report.html", "manifest.json", "estimates.csv", "curves.csv", "attrition.csv",
             "balance.csv", "positivity.json", "bootstrap.json", "extract_check.json")
 ESTIMATE_KEY = ["outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm", "comparator"]

@@ -12,3 +12,19 @@ rule build_cohort:
         logfile("build_cohort"),
     script:
         "../../scripts/build_cohort.py"
+
+
+# person-periods (CONTRACTS §5a, §5g): only when the protocol asks for per_protocol
+rule build_periods:
+    input:
+        cohort=result("cohort.parquet"),
+        tables=EXTRACT_FILES,
+        protocol=PROTOCOL_FILES,
+    output:
+        periods=result("periods.parquet"),
+    params:
+        duckdb=DUCKDB,
+    log:
+        logfile("build_periods"),
+    script:
+        "../../scripts/build_periods.py"

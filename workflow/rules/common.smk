@@ -16,6 +16,7 @@ PROTOCOL_FILES = emulant_paths.protocol_files(PROTOCOL_PARSED)
 DUCKDB = config.get("duckdb", {})
 WORKERS = config.get("workers", 2)
 BOOTSTRAP_CHUNKS = emulant_paths.bootstrap_chunks(PROTOCOL_PARSED, config.get("bootstrap_chunks"))
+PER_PROTOCOL = PROTOCOL_PARSED.per_protocol  # person-time results only when it is asked for
 
 
 def result(name):
@@ -29,3 +30,8 @@ def logfile(name):
 def job_threads(wildcards, threads):
     """A rule's threads as Snakemake gave them (scaled down to --cores): its worker processes."""
     return threads
+
+
+def person_time_results():
+    """periods.parquet when the protocol asks for per_protocol, else nothing."""
+    return [result("periods.parquet")] if PER_PROTOCOL else []
