@@ -6,7 +6,7 @@ import importlib
 import sys
 import time
 
-MODULES = ("bench_synth", "bench_cohort", "bench_weights", "bench_effects", "bench_survival",
+MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_weights", "bench_effects", "bench_survival",
            "bench_coverage")
 
 
