@@ -109,6 +109,10 @@ class Collector:
             return None
         if v[0] > v[1]:
             self.add(key, f"window start {v[0]} is after its end {v[1]} (expected a <= b)")
+        if v[1] > 0:
+            self.add(key, f"window end {v[1]} is after day 0: a window must end on or before day 0, "
+                          "the day it describes (time zero, or a period's first day); a record "
+                          "after it would let the future decide the past")
         return (int(v[0]), int(v[1]))
 
     def listing(self, v: Any, key: str) -> list:

@@ -27,10 +27,16 @@ def read_measured(c: Collector, d: Any, key: str, concepts) -> MeasuredOutcome:
     m = need_concept(c, concepts, d.get("measure"), f"{key}.measure") if d.get("measure") else ""
     if m in concepts and concepts[m].source != "measurements":
         c.add(f"{key}.measure", f"concept '{m}' has source '{concepts[m].source}'; a measured outcome needs source measurements")
+    at_day = c.integer(d.get("at_day"), f"{key}.at_day", 0, 1) or 0
+    tolerance = c.integer(d.get("tolerance_days"), f"{key}.tolerance_days", 30, 0) or 0
+    if at_day >= 1 and at_day - tolerance < 1:
+        c.add(f"{key}.tolerance_days", f"at_day - tolerance_days = {at_day - tolerance} reaches day 0 or "
+                                       "earlier, so a baseline value could count as the outcome (expected "
+                                       f"tolerance_days <= {at_day - 1})")
     return MeasuredOutcome(
         measure=m,
-        at_day=c.integer(d.get("at_day"), f"{key}.at_day", 0, 1) or 0,
-        tolerance_days=c.integer(d.get("tolerance_days"), f"{key}.tolerance_days", 30, 0) or 0,
+        at_day=at_day,
+        tolerance_days=tolerance,
         change_from_baseline=c.boolean(d.get("change_from_baseline"), f"{key}.change_from_baseline", False),
         missing=c.choice(d.get("missing"), f"{key}.missing", ("censor", "complete_case"), "censor") or "censor",
     )
@@ -90,8 +96,6 @@ def read_covariates(c: Collector, node: Any, concepts, section: str = "covariate
                 kind = "binary"
             elif summary is not None:
                 kind = "continuous"
-        if tv and window is not None and window[1] > 0:
-            c.add(f"{k}.window", f"a window must end on or before day 0 (the period's first day), got {list(window)}: a record after the day it describes would let the future decide the past")
         missing = c.choice(d.get("missing"), f"{k}.missing", ("indicator",) if tv else ("indicator", "exclude"), "indicator")
         attribute = c.text(d.get("attribute"), f"{k}.attribute") if d.get("attribute") is not None and not tv else None
         out.append(Covariate(name, builtin, attribute, concept, source, window, summary, kind, missing or "indicator"))

@@ -48,7 +48,7 @@ def scenarios(draw):
         "entry": entry, "age_min": draw(st.sampled_from([None, None, 57, 58])),
         "age_max": draw(st.sampled_from([None, None, 58, 59])),
         "cbd": draw(st.sampled_from([0, 30, 365])), "washout": draw(st.sampled_from([0, 30, 90])),
-        "req": (req, draw(st.integers(max(req, -5), 5))), "exc": (draw(st.integers(-300, 0)), 0),
+        "req": (req, draw(st.integers(max(req, -5), 0))), "exc": (draw(st.integers(-300, 0)), 0),
         "same_day": draw(st.sampled_from(["exclude", "first_listed"])),
         "max_days": draw(st.integers(30, 400)), "admin": draw(st.integers(300, 700)),
     }

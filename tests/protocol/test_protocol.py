@@ -106,11 +106,40 @@ def test_code_list_file_empty(tmp_path):
 def test_window_start_after_end(tmp_path):
     def edit(d):
         d["eligibility"]["require"][0]["window"] = [0, -1825]
-        d["covariates"][3]["window"] = [5, 1]
+        d["covariates"][3]["window"] = [-1, -5]
 
     probs = problems_of(tmp_path, edit)
     assert "window start 0 is after its end -1825" in one(probs, "eligibility.require[0].window:")
     assert "expected a <= b" in one(probs, "covariates[3] (hba1c).window:")
+
+
+def test_windows_that_reach_past_time_zero(tmp_path):
+    """A baseline window ends at time zero at the latest: a record after it lets the outcome
+    enter the adjustment set or the eligibility (immortal time). Common practice in target trial
+    emulation (eligibility and covariates are fixed at time zero); CONTRACTS §5a makes it an error."""
+    def edit(d):
+        d["covariates"][3]["window"] = [0, 400]
+        d["eligibility"]["exclude"] = [{"concept": "hf_admission", "window": [0, 90]}]
+        d["eligibility"]["require"][0]["window"] = [-1825, 1]
+        d["outcomes"]["secondary"] = [{"measure": "hba1c", "at_day": 365, "tolerance_days": 365}]
+
+    probs = problems_of(tmp_path, edit)
+    assert "window end 400 is after day 0" in one(probs, "covariates[3] (hba1c).window:")
+    assert "window end 90 is after day 0" in one(probs, "eligibility.exclude[0].window:")
+    assert "window end 1 is after day 0" in one(probs, "eligibility.require[0].window:")
+    msg = one(probs, "outcomes.secondary[0].tolerance_days:")
+    assert "at_day - tolerance_days = 0 reaches day 0" in msg and "tolerance_days <= 364" in msg
+    assert len(probs) == 4, probs
+
+
+def test_windows_ending_on_time_zero_are_accepted(tmp_path):
+    def edit(d):
+        d["covariates"][3]["window"] = [-365, 0]
+        d["outcomes"]["secondary"] = [{"measure": "hba1c", "at_day": 365, "tolerance_days": 364}]
+
+    d = copy.deepcopy(protocol_dict())
+    edit(d)
+    load_protocol(write_protocol(tmp_path, d))
 
 
 def test_entry_window_order(tmp_path):
