@@ -16,7 +16,7 @@ weights.parquet: person_id, arm, propensity, weight_<ESTIMAND> for each estimand
 
 from __future__ import annotations
 
-END_REASONS = ("outcome", "competing", "coverage_end", "administrative_end", "max_follow_up")
+END_REASONS = ("outcome", "competing", "administrative_end", "max_follow_up", "coverage_end")
 
 
 def missing_flag(covariate: str) -> str:

@@ -239,7 +239,7 @@ def measured_outcome(t: Tables, protocol: Protocol, m: MeasuredOutcome,
     return out
 
 
-REASONS = ("outcome", "competing", "coverage_end", "administrative_end", "max_follow_up")
+REASONS = ("outcome", "competing", "administrative_end", "max_follow_up", "coverage_end")
 
 
 def follow_up(t: Tables, protocol: Protocol, outcome: str, t0: np.ndarray
@@ -258,11 +258,11 @@ def follow_up(t: Tables, protocol: Protocol, outcome: str, t0: np.ndarray
         cand.append(np.where(death >= 0, death, NONE))
     else:
         cand.append(np.full(n, NONE))
-    _, cend = period_holding(t.coverage, t0, n)
-    cand.append(np.where(cend < NONE, cend - t0, NONE))
     adm = protocol.follow_up.administrative_end
     cand.append(np.full(n, days_since_epoch(adm)) - t0 if adm else np.full(n, NONE))
     cand.append(np.full(n, protocol.follow_up.max_days))
+    _, cend = period_holding(t.coverage, t0, n)  # last: coverage ending on a planned end is no censoring
+    cand.append(np.where(cend < NONE, cend - t0, NONE))
     c = np.stack(cand)
     reason = np.argmin(c, axis=0)  # the first minimum: the order of REASONS breaks ties
     return np.where(ok, c.min(axis=0), NONE), np.where(ok, reason, -1)

@@ -282,19 +282,20 @@ def _check_not_empty(att: pd.DataFrame, by_arm: list[dict[str, int]], arms) -> N
 
 def _end_sql(p: Protocol, od: str, has_comp: bool) -> tuple[str, str]:
     """``end_day`` and ``end_reason`` of one time-to-event outcome: the first of outcome,
-    competing event, coverage end, administrative end and max_days, ties in that order."""
+    competing event, administrative end, max_days and coverage end, ties in that order
+    (coverage that ends on the planned end of follow-up is not censoring, CONTRACTS §3a)."""
     f = p.follow_up
     parts = [("outcome", od)]
     if has_comp:
         parts.append(("competing", "comp_day"))
-    parts.append(("coverage_end", "coverage_end_day"))
     if f.administrative_end is not None:
         parts.append(("administrative_end",
                       f"date_diff('day', time_zero, DATE {lit(f.administrative_end)})"))
     parts.append(("max_follow_up", str(f.max_days)))
+    parts.append(("coverage_end", "coverage_end_day"))
     end = f"least({', '.join(x for _, x in parts)})"
     reason = "CASE " + " ".join(f"WHEN {x} = {end} THEN '{r}'" for r, x in parts[:-1])
-    return end, reason + " ELSE 'max_follow_up' END"
+    return end, reason + " ELSE 'coverage_end' END"
 
 
 def _cohort_frame(con, p: Protocol) -> pd.DataFrame:

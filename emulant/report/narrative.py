@@ -77,9 +77,10 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
         "time_zero": ("The date of the first record of an arm's initiating concept inside the "
                       "entry window: eligibility is assessed, the arm assigned and follow-up "
                       "started on that same day (day 0); a person is tested once, at that date."),
-        "follow_up": (f"From day 0 to the first of: the outcome, a competing event, the end of "
-                      f"coverage, the administrative end ({f.administrative_end or 'none'}) or "
-                      f"{f.max_days} days."),
+        "follow_up": (f"From day 0 to the first of: the outcome, a competing event, the "
+                      f"administrative end ({f.administrative_end or 'none'}), {f.max_days} days "
+                      "or the end of coverage (coverage that ends on the administrative end or "
+                      "on the last day of follow-up is that planned end, not censoring)."),
         "outcome": ("Primary: " + _outcome(p, p.outcomes.primary) + "."
                     + (" Competing: " + ", ".join(_concept(p, c) for c in p.outcomes.competing)
                        + "." if p.outcomes.competing else "")
@@ -212,7 +213,8 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
         censev = ["Censoring is an outcome-stage quantity: not examined in the design report."]
     elif cens:
         censev = [f"End of follow-up by reason and arm (primary outcome {cens['outcome']}) in the "
-                  "table below; coverage end is the censoring that could be informative.",
+                  "table below; coverage end is the censoring that could be informative (coverage "
+                  "that ends on a planned end of follow-up is counted as that planned end).",
                   censoring_assumption(p)]
     else:
         censev = ["End-of-follow-up reasons: not produced in this run."]

@@ -283,13 +283,19 @@ def test_no_competing_event_means_death_is_not_an_end(tmp_path):
 def test_administrative_end_and_max_days(tmp_path):
     # 2020-01-01 .. 2022-12-31 = 1095 days = max_days: a tie, administrative_end wins;
     # 2020-01-02: 1094, administrative end; 2019-12-31: 1096, so max_days (1095) ends it
+    # Coverage that ends on a planned end is the planned end, not censoring (CONTRACTS §3a):
+    # 4 and 5 end coverage on the administrative end, 6 on day 1095 = max_days; 7 a day before.
     disp = [(1, "2020-01-01", "RXA1"), (2, "2020-01-02", "RXA1"), (3, "2019-12-31", "RXA1"),
-            (4, "2020-01-01", "RXA1")]
-    cov = [(4, "2000-01-01", "2022-12-31")]  # coverage ends the same day: coverage_end wins
-    res = run(tmp_path, persons=[1, 2, 3, 4], disp=disp, coverage=cov)
-    got = {i: (row(res, i).end_day, row(res, i).end_reason) for i in range(1, 5)}
+            (4, "2020-01-01", "RXA1"), (5, "2020-06-01", "RXA1"), (6, "2019-12-31", "RXA1"),
+            (7, "2019-12-31", "RXA1")]
+    cov = [(4, "2000-01-01", "2022-12-31"), (5, "2000-01-01", "2022-12-31"),
+           (6, "2000-01-01", "2022-12-30"), (7, "2000-01-01", "2022-12-29")]
+    res = run(tmp_path, persons=range(1, 8), disp=disp, coverage=cov)
+    got = {i: (row(res, i).end_day, row(res, i).end_reason) for i in range(1, 8)}
     assert got == {1: (1095, "administrative_end"), 2: (1094, "administrative_end"),
-                   3: (1095, "max_follow_up"), 4: (1095, "coverage_end")}
+                   3: (1095, "max_follow_up"), 4: (1095, "administrative_end"),
+                   5: (943, "administrative_end"), 6: (1095, "max_follow_up"),
+                   7: (1094, "coverage_end")}
 
 
 def test_outcome_after_end_is_ignored_and_secondary_outcomes(tmp_path):

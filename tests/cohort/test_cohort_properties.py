@@ -10,6 +10,7 @@ import math
 import tempfile
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -243,9 +244,9 @@ def _values(r, dx, ms, age, hold, death, par) -> dict:
     cands = [("outcome", hf.min() if len(hf) else None)]
     dk = (death - t0).days if death is not None else None
     cands.append(("competing", dk if dk is not None and dk >= 0 else None))
-    cands.append(("coverage_end", (hold[0][1] - t0).days))
     cands.append(("administrative_end", (day(par["admin"]) - t0).days))
     cands.append(("max_follow_up", max(par["max_days"], 30)))
+    cands.append(("coverage_end", (hold[0][1] - t0).days))  # last on a tie (CONTRACTS §3a)
     end = min(v for _, v in cands if v is not None)
     reason = next(n for n, v in cands if v == end)
     win = dx[dx.k.between(-100, 0)]
@@ -340,3 +341,40 @@ def test_synthetic_eligible_counts_equal_the_generator(tmp_path):
     if "attrition" in truth:  # the generator's own step counts, step by step
         want = [(r["step"], int(r["remaining"])) for r in truth["attrition"]]
         assert list(zip(res.attrition.step, res.attrition.remaining, strict=True)) == want
+
+
+def test_synthetic_follow_up_ends_agree_person_by_person(tmp_path):
+    """A data cut-off equal to the administrative end: coverage still open on the last day of
+    the extract ends there, which is the planned end of follow-up, not censoring (CONTRACTS §3a,
+    ties: outcome, competing, administrative_end, max_follow_up, coverage_end). The generator's
+    own numpy reading (synthetic_cohort.rules) and the cohort SQL agree person by person."""
+    gen = pytest.importorskip("synthetic_cohort.generate")
+    import yaml
+
+    from emulant.protocol import load_protocol
+    from synthetic_cohort import params as P
+    from synthetic_cohort import rules
+    from synthetic_cohort.records import NONE, read_tables
+
+    gen.write_synthetic(tmp_path, 3000, 5, "parquet")
+    d = yaml.safe_load((tmp_path / "protocol.yaml").read_text())
+    d["follow_up"]["administrative_end"] = (P.EPOCH + dt.timedelta(days=int(P.DATA_END))).isoformat()
+    (tmp_path / "cutoff.yaml").write_text(yaml.safe_dump(d, sort_keys=False))
+    protocol = load_protocol(tmp_path / "cutoff.yaml")
+    cohort = build_cohort(open_extract(tmp_path, protocol, {"threads": 2}), protocol).cohort
+    t = rules.plausible(read_tables(tmp_path))
+    ref = rules.eligibility(t, protocol)
+    end, reason = rules.follow_up(t, protocol, "hf_admission",
+                                  np.where(ref.eligible, ref.t0, NONE))
+    ids = pd.read_parquet(tmp_path / "persons.parquet")["person_id"].astype(str).to_numpy()
+    want = {ids[i]: (int(end[i]), rules.REASONS[reason[i]]) for i in np.flatnonzero(ref.eligible)}
+    got = {str(p): (int(e), r) for p, e, r in zip(cohort.person_id, cohort.end_day,
+                                                  cohort.end_reason, strict=True)}
+    assert got == want
+    # the ties are there: persons whose coverage ran to the cut-off end as administrative_end
+    planned = np.minimum((pd.Timestamp(protocol.follow_up.administrative_end)
+                          - pd.to_datetime(cohort.time_zero)).dt.days, protocol.follow_up.max_days)
+    tied = cohort[(cohort.coverage_end_day == planned) & (cohort.end_day == planned)]
+    assert len(tied) > 100
+    assert set(tied.end_reason) <= {"outcome", "competing", "administrative_end", "max_follow_up"}
+    assert (tied.end_reason == "administrative_end").sum() > 100
