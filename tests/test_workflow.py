@@ -59,7 +59,7 @@ def test_first_run_writes_every_result(workdir):
         assert (res / name).is_file(), name
     est = pd.read_csv(res / "estimates.csv")
     assert list(est.columns) == ["outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
-                                 "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events"]
+                                 "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events", "note"]
     assert {"ATE", "ATT"} <= set(est.estimand.dropna())
     archived = json.loads((res / "archive.json").read_text())
     assert Path(workdir / archived["report"]).is_file() or Path(archived["report"]).is_file()

@@ -331,6 +331,7 @@ def bootstrap_intervals(point: np.ndarray, reps: np.ndarray, ratio: np.ndarray,
         scale = np.where(ratio, np.log(np.where(reps > 0, reps, np.nan)), reps)
         centre = np.where(ratio, np.log(np.where(point > 0, point, np.nan)), point)
     finite = np.isfinite(scale)
+    scale = np.where(finite, scale, np.nan)  # an infinite ratio is no value (counted elsewhere)
     count = finite.sum(axis=0)
     se = nan.copy()
     ok = count >= 2
@@ -350,14 +351,42 @@ def bootstrap_intervals(point: np.ndarray, reps: np.ndarray, ratio: np.ndarray,
     return se, lo, hi
 
 
+def non_estimable_replicates(rows: list[dict], run: BootstrapRun) -> np.ndarray:
+    """Per row: completed replicates whose value is missing, or 0 or infinite for a ratio,
+    while the point estimate is estimable (those replicates cannot enter a log-scale interval)."""
+    point = np.array([np.nan if r.get("estimate") is None else float(r["estimate"]) for r in rows])
+    ratio = np.array([r.get("measure") in RATIO_MEASURES for r in rows], dtype=bool)
+    reps = run.row_reps
+    with np.errstate(all="ignore"):
+        bad = ~np.isfinite(reps) | (ratio & (reps <= 0))
+        ok = np.isfinite(point) & ~(ratio & (point <= 0))
+    return np.where(ok, bad.sum(axis=0), 0).astype(int)
+
+
 def attach_intervals(rows: list[dict], curves: list[dict], run: BootstrapRun,
                      interval: str) -> tuple[list[dict], list[dict]]:
-    """New rows with ``se, ci_low, ci_high`` (estimates) and ``ci_low, ci_high`` (curves)."""
+    """New rows with ``se, ci_low, ci_high`` (estimates) and ``ci_low, ci_high`` (curves).
+
+    Replicates whose value is not estimable (:func:`non_estimable_replicates`) are left out of
+    a row's interval and counted in its ``note``; above 5% of the completed replicates (the
+    share that stops the whole bootstrap) the row gets no interval, since leaving out the
+    replicates with no events in an arm would narrow it towards the estimable ones.
+    """
     point = np.array([np.nan if r.get("estimate") is None else float(r["estimate"]) for r in rows])
     ratio = np.array([r.get("measure") in RATIO_MEASURES for r in rows], dtype=bool)
     se, lo, hi = bootstrap_intervals(point, run.row_reps, ratio, interval)
-    out = [{**r, "se": float(s), "ci_low": float(a), "ci_high": float(b)}
-           for r, s, a, b in zip(rows, se, lo, hi, strict=True)]
+    bad = non_estimable_replicates(rows, run)
+    out = []
+    for r, s, a, b, k in zip(rows, se, lo, hi, bad, strict=True):
+        r = {**r, "se": float(s), "ci_low": float(a), "ci_high": float(b)}
+        if k > 0:
+            many = _too_many(int(k), run.completed)
+            note = (f"{k} of {run.completed} bootstrap replicates not estimable (missing, 0 or "
+                    f"infinite); {'no interval' if many else 'interval from the others'}")
+            r["note"] = f"{r['note']}; {note}" if r.get("note") else note
+            if many:
+                r.update(se=float("nan"), ci_low=float("nan"), ci_high=float("nan"))
+        out.append(r)
     cpoint = np.array([np.nan if c.get("risk") is None else float(c["risk"]) for c in curves])
     _, clo, chi = bootstrap_intervals(cpoint, run.curve_reps, np.zeros(len(curves), bool), interval)
     cout = [{**c, "ci_low": float(a), "ci_high": float(b)}

@@ -119,6 +119,31 @@ def cox_fit(time, event, X, weight=None, freq=None, tol: float = 1e-10,
     return np.full(p, np.nan) if np.max(np.abs(grad)) > 1e-6 * max(1.0, abs(ll)) else beta
 
 
+def monotone_likelihood(time, event, treated, weight) -> str:
+    r"""Why the hazard ratio of a 0/1 ``treated`` has no finite maximum likelihood estimate ('' if it has).
+
+    The log partial likelihood is concave in :math:`\beta`; its score tends, as
+    :math:`\beta \to -\infty`, to the weighted number of treated events at times when someone
+    of the comparator arm is still at risk (and, as :math:`\beta \to +\infty`, minus the
+    comparator events at times when someone treated is at risk). When that number is zero the
+    likelihood is monotone and the estimate is infinite: no events in an arm is the common case
+    (Heinze & Schemper 2001, Biometrics 57:114, "monotone likelihood"). Such a ratio is not
+    estimable; the fit would stop at an arbitrary large :math:`|\beta|`.
+    """
+    t, a, w, d = (np.asarray(x, dtype=float) for x in (time, treated, weight, event))
+    keep = (w > 0) & np.isfinite(t)
+    t, a, w, d = t[keep], a[keep], w[keep], d[keep]
+    for g, name in ((1, "treated"), (0, "comparator")):
+        ev = (d > 0) & (a == g)
+        if not np.any(ev):
+            return f"no events in the {name} arm"
+        last_other = np.max(t[a != g], initial=-np.inf)  # the other arm is at risk up to its last time
+        if not np.any(ev & (t <= last_other)):
+            return (f"every event of the {name} arm comes after the other arm's last person "
+                    "left follow-up (monotone likelihood)")
+    return ""
+
+
 @dataclass(frozen=True)
 class HazardRatio:
     """A hazard ratio of the treated arm versus the comparator."""
@@ -128,6 +153,7 @@ class HazardRatio:
     n: float
     events: float
     cause_specific: bool
+    not_estimable: str = ""  # why the ratio is not estimable ('' when it is)
 
     @property
     def hr(self) -> float:
@@ -135,7 +161,8 @@ class HazardRatio:
 
     def to_dict(self) -> dict:
         return {"log_hr": self.log_hr, "hr": self.hr, "se_robust": self.se_robust, "n": self.n,
-                "events": self.events, "cause_specific": self.cause_specific}
+                "events": self.events, "cause_specific": self.cause_specific,
+                "not_estimable": self.not_estimable}
 
     @property
     def summary(self) -> pd.DataFrame:
@@ -153,14 +180,17 @@ def cox_hazard_ratio(time, status, treated, weight=None, freq=None,
     ``weight * freq``; slow on large data) accounts for the weights, but not for their
     estimation: the pipeline's bootstrap does. ``freq`` are frequency weights (:func:`cox_fit`).
 
-    See the module docstring for the proportional-hazards caution (Hernán 2010).
+    With no finite estimate (no events in an arm, :func:`monotone_likelihood`) ``log_hr`` is
+    NaN and ``not_estimable`` says why. See the module docstring for the proportional-hazards
+    caution (Hernán 2010).
     """
     t, w = check_times(time, weight)
     _, fr = check_times(time, freq)
     s = check_status(status, t.size)
     a = np.asarray(treated, dtype=float)
     event = (s == 1).astype(int)
-    beta = cox_fit(t, event, a, w, fr)
+    why = monotone_likelihood(t, event, a, w * fr)
+    beta = cox_fit(t, event, a, w, fr) if not why else np.full(1, np.nan)
     w = w * fr
     se = float("nan")
     if robust_se and np.isfinite(beta[0]):
@@ -175,4 +205,5 @@ def cox_hazard_ratio(time, status, treated, weight=None, freq=None,
             fit = CoxPHFitter().fit(df, "T", "E", weights_col="w", robust=True)
         se = float(fit.standard_errors_["a"])
     return HazardRatio(log_hr=float(beta[0]), se_robust=se, n=float(fr.sum()),
-                       events=float(np.sum(fr * event)), cause_specific=bool(np.any(s == 2)))
+                       events=float(np.sum(fr * event)), cause_specific=bool(np.any(s == 2)),
+                       not_estimable=why)

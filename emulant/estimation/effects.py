@@ -21,7 +21,14 @@ import pandas as pd
 
 from emulant import columns
 from emulant.cohort.covariates import covariate_kinds
-from emulant.estimation.bootstrap import BootstrapRun, attach_intervals, run_bootstrap
+from emulant.estimation.bootstrap import (
+    ROW_KEY,
+    BootstrapRun,
+    attach_intervals,
+    non_estimable_replicates,
+    row_key,
+    run_bootstrap,
+)
 from emulant.estimation.chunks import PointEstimate, combine_runs
 from emulant.estimation.evalue import e_value_rows
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
@@ -35,7 +42,7 @@ from emulant.protocol import MeasuredOutcome, Protocol
 log = logging.getLogger(__name__)
 
 ESTIMATE_COLUMNS = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
-                    "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events")
+                    "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events", "note")
 CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low", "ci_high",
                  "at_risk")
 EffectsError = EstimationError  # the same class under the module's name
@@ -123,6 +130,13 @@ def _whole_numbers(s: pd.Series) -> pd.Series:
     return v if len(known) else s
 
 
+def non_estimable_account(rows: list[dict], run: Any) -> list[dict]:
+    """bootstrap.json's ``non_estimable``: each row with non-estimable replicates, and how many."""
+    counts = non_estimable_replicates(rows, run)
+    return [{**dict(zip(ROW_KEY, row_key(r, ROW_KEY), strict=True)), "replicates": int(c),
+             "of": run.completed} for r, c in zip(rows, counts, strict=True) if c > 0]
+
+
 def check_cohort(cohort: pd.DataFrame, protocol: Protocol) -> None:
     """Raise :class:`EffectsError` naming a column the estimators need that the cohort lacks."""
     need = [TREATED] + [columns.value(m.measure) for m in protocol.outcomes.measured()]
@@ -178,8 +192,9 @@ def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Pro
     boot = combine_runs(runs, protocol, len(point.rows), len(point.curves))
     rows, curves = attach_intervals(point.rows, point.curves, boot,
                                     protocol.analysis.bootstrap.interval)
-    rows = rows + e_value_rows(rows)
     account = boot.account()
+    account["non_estimable"] = non_estimable_account(rows, boot)
+    rows = rows + e_value_rows(rows)
     account["point_estimate_warnings"] = list(point.warnings)
     return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account)
 

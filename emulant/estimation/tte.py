@@ -96,11 +96,23 @@ def _end_columns(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
     return time, reason
 
 
-def _row(outcome, estimand, method, measure, horizon, arm, comparator, estimate, n, events):
-    return {"outcome": outcome, "contrast": CONTRAST, "estimand": estimand, "method": method,
-            "measure": measure, "horizon_day": horizon, "arm": arm, "comparator": comparator,
-            "estimate": float(estimate), "n": None if n is None else int(round(n)),
-            "events": None if events is None else int(round(events))}
+def _row(outcome, estimand, method, measure, horizon, arm, comparator, estimate, n, events,
+         note=""):
+    row = {"outcome": outcome, "contrast": CONTRAST, "estimand": estimand, "method": method,
+           "measure": measure, "horizon_day": horizon, "arm": arm, "comparator": comparator,
+           "estimate": float(estimate), "n": None if n is None else int(round(n)),
+           "events": None if events is None else int(round(events))}
+    if note:  # why the estimate is empty (the estimates.csv column ``note``)
+        row["note"] = note
+    return row
+
+
+def _zero_risk_note(r1: float, r0: float, arms: dict, horizon) -> str:
+    """A risk ratio with a zero (or missing) risk in an arm is not estimable: 0 or infinite."""
+    empty = [arms[g] for g, r in ((1, r1), (0, r0)) if not r > 0]
+    if not empty:
+        return ""
+    return f"not estimable: no events by day {horizon} in {' and '.join(empty)}"
 
 
 class _Context:
@@ -138,9 +150,9 @@ class _Context:
             r1, r0 = risk[1][h], risk[0][h]
             rows.append(_row(o, estimand, method, "risk_difference", h, self.arms[1],
                              self.arms[0], r1 - r0, n, ev))
-            rr = r1 / r0 if r0 > 0 else float("nan")
+            rr = r1 / r0 if r0 > 0 and r1 > 0 else float("nan")
             rows.append(_row(o, estimand, method, "risk_ratio", h, self.arms[1], self.arms[0],
-                             rr, n, ev))
+                             rr, n, ev, note=_zero_risk_note(r1, r0, self.arms, h)))
         return rows
 
     def curve_rows(self, estimand, method, curves):
@@ -155,8 +167,9 @@ class _Context:
     def hazard_ratio_row(self, estimand, method, w):
         """Cox hazard ratio weighted by ``w`` (None: unweighted) with the frequency weights."""
         hr = cox_hazard_ratio(self.time, self.status, self.a, w, freq=self.f)
+        note = f"not estimable: {hr.not_estimable}" if hr.not_estimable else ""
         return _row(self.outcome, estimand, method, "hazard_ratio", None, self.arms[1],
-                    self.arms[0], hr.hr, hr.n, hr.events)
+                    self.arms[0], hr.hr, hr.n, hr.events, note=note)
 
     def aj_curves(self, w):
         """Weighted Aalen–Johansen cumulative incidence by arm on the grid and at horizons."""

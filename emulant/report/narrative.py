@@ -148,6 +148,13 @@ def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design:
                 out.append({"section": "results", "text":
                             f"Few events: fewer than {FEW_EVENTS} primary-outcome events in "
                             f"{arm}."})
+        est = raw.get("estimates")
+        if est is not None and "note" in est.columns:
+            gone = est[est["estimate"].isna() & est["note"].fillna("").astype(str).str.startswith("not estimable")]
+            for (o, note), g in gone.groupby([gone["outcome"].astype(str), gone["note"].astype(str)], sort=True):
+                out.append({"section": "results", "text":
+                            f"{o}: {len(g)} estimate(s) ({', '.join(sorted(set(g['measure'].astype(str))))}) "
+                            f"{note}."})
         b = raw.get("bootstrap")
         if b and (b.get("failed") or 0) > 0:
             out.append({"section": "results", "text":

@@ -90,13 +90,17 @@ def _row(r: Any, m: int, hide_crude: bool, protocol: Protocol) -> dict:
     ev_hidden = (not math.isnan(ev) and not math.isnan(n) and dc.suppress_binary(ev, n, m)
                  and not dc.is_small(ev, m))
     hidden = hide_crude and r.method == "unadjusted"
-    if r.measure == "e_value":
+    note = fmt.text(getattr(r, "note", None))
+    if fmt.missing(r.estimate) and note:
+        val, interval = "", ""  # the note says "not estimable: <why>"
+    elif r.measure == "e_value":
         val = f"{fmt.num(r.estimate, 2)}; {fmt.num(r.ci_low, 2)}"
         interval = ""
     else:
         digits = 3
         val, interval = fmt.sig(r.estimate, digits), fmt.ci(r.ci_low, r.ci_high, digits)
     return {
+        "note": "" if hidden else note,
         "method": METHOD_LABEL.get(r.method, str(r.method)),
         "measure": measure_label(r.measure, protocol),
         "horizon": "" if fmt.missing(r.horizon_day) else fmt.integer(r.horizon_day),
@@ -246,7 +250,12 @@ def bootstrap(b: dict) -> dict:
     return {"requested": fmt.integer(b.get("requested")), "completed": fmt.integer(b.get("completed")),
             "failed": fmt.integer(b.get("failed")), "seed": fmt.text(b.get("seed")),
             "interval": fmt.text(b.get("interval")), "workers": fmt.text(b.get("workers")),
-            "failures": [str(f) for f in fails[:10]]}
+            "failures": [str(f) for f in fails[:10]],
+            "non_estimable": [
+                f"{x.get('outcome')}, {x.get('estimand') or 'unadjusted'}, {x.get('method')}, "
+                f"{x.get('measure')}{', day ' + fmt.integer(x['horizon_day']) if not fmt.missing(x.get('horizon_day')) else ''}: "
+                f"{x.get('replicates')} of {x.get('of')} replicates not estimable"
+                for x in (b.get("non_estimable") or [])]}
 
 
 def measured_missing(cohort: pd.DataFrame | None, protocol: Protocol) -> list[dict]:

@@ -186,6 +186,8 @@ def write_results(d: Path, with_outcomes: bool = True) -> None:
                 estimate=1.53, ci_low=1.0)
             add(estimand=e, method=meth, measure="risk_ratio", comparator="class_b",
                 outcome="fracture", estimate=1.05, ci_low=0.80, ci_high=1.38, se=0.14)
+    add(measure="hazard_ratio", horizon_day=None, comparator="class_b", estimate=None, n=60,
+        events=21, note="not estimable: no events in the treated arm")
     pd.DataFrame(est).to_csv(d / "estimates.csv", index=False)
     cv = []
     for e, meth in (("", "unadjusted"), ("ATE", "ipw"), ("ATE", "doubly_robust"), ("ATT", "ipw")):
@@ -199,7 +201,11 @@ def write_results(d: Path, with_outcomes: bool = True) -> None:
     pd.DataFrame(cv).to_csv(d / "curves.csv", index=False)
     (d / "bootstrap.json").write_text(json.dumps({
         "requested": 20, "completed": 19, "failed": 1, "failures": ["replicate 4: singular"],
-        "seed": 7, "interval": "wald", "workers": 2}))
+        "seed": 7, "interval": "wald", "workers": 2,
+        "non_estimable": [{"outcome": "admission", "contrast": "intention_to_treat",
+                           "estimand": "ATE", "method": "ipw", "measure": "risk_ratio",
+                           "horizon_day": 1095, "arm": "class_a", "comparator": "class_b",
+                           "replicates": 2, "of": 19}]}))
 
 
 MANIFEST = {"stamp": "20261201T120000Z", "study_id": "report-fixture",
@@ -337,6 +343,18 @@ def test_warnings_and_negative_control(full):
     assert "the interval includes the null" in html  # fracture RR 0.80 to 1.38
     assert any(r and r[0] == "coverage end" for r in page.rows)
     assert "Protocol amendment" in html and "diagnoses.parquet" in html
+
+
+def test_a_ratio_without_estimate_says_why(full):
+    # a ratio with no events in an arm has no finite estimate (Heinze & Schemper 2001): the
+    # table says "not estimable" with the reason from estimates.csv, the warnings panel names
+    # it, and the bootstrap section counts the replicates left out of an interval
+    _, _, html = full
+    page = _parse(html)
+    hr = [r for r in page.rows if len(r) > 4 and r[1].endswith("hazard ratio")]
+    assert hr and hr[0][4] == "not estimable: no events in the treated arm"
+    assert "admission: 1 estimate(s) (hazard_ratio) not estimable: no events in the treated arm." in html
+    assert "admission, ATE, ipw, risk_ratio, day 1,095: 2 of 19 replicates not estimable" in html
 
 
 def test_render_is_deterministic(full, tmp_path):
