@@ -194,7 +194,7 @@ def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Pro
                                     protocol.analysis.bootstrap.interval)
     account = boot.account()
     account["non_estimable"] = non_estimable_account(rows, boot)
-    rows = rows + e_value_rows(rows)
+    rows = rows + e_value_rows(rows, protocol.outcomes.negative_controls)
     account["point_estimate_warnings"] = list(point.warnings)
     return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account)
 

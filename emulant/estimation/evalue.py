@@ -20,15 +20,21 @@ the hazard ratio approximates the risk ratio and is used as it is; with a common
 
     RR \\approx \\frac{1 - 0.5^{\\sqrt{HR}}}{1 - 0.5^{\\sqrt{1/HR}}},
 
-as in that paper's table of approximations. The outcome risk used for the rule is the share of
-the hazard-ratio row's persons with the outcome over follow-up, ``events / n`` (crude; common
-practice, no single source for this choice).
+as in that paper's table of approximations. "Common" is decided, as the paper defines it, by
+the outcome's cumulative risk at the end of follow-up: here the larger of the two arms' estimated
+risks at the latest horizon, from the same outcome, estimand and method as the hazard ratio (a
+crude share ``events / n`` understates it when follow-up is censored). Without such a risk the
+outcome is taken as common, the choice that gives the smaller E-value.
 
-Rows (:func:`e_value_rows`): one ``e_value`` row per ratio row, with the ratio row's ``outcome``,
-``contrast``, ``estimand``, ``method``, ``horizon_day``, ``arm``, ``comparator``, ``n`` and
-``events``; ``estimate`` holds the E-value of the point estimate and ``ci_low`` the E-value of the
-confidence limit nearest the null (empty when the ratio row has no interval); ``ci_high`` and
-``se`` stay empty. It is called after the bootstrap has added the intervals.
+An E-value speaks about an adjusted estimate: none is written for ``unadjusted`` rows nor for
+negative-control outcomes (whose ratio is a check of residual confounding, not an effect).
+
+Rows (:func:`e_value_rows`): one ``e_value`` row per adjusted ratio row, with the ratio row's
+``outcome``, ``contrast``, ``estimand``, ``method``, ``horizon_day``, ``arm``, ``comparator``,
+``n`` and ``events``; ``estimate`` holds the E-value of the point estimate and ``ci_low`` the
+E-value of the confidence limit nearest the null (empty when the ratio row has no interval);
+``ci_high`` and ``se`` stay empty; a ratio that is not estimable passes its ``note`` on. It is
+called after the bootstrap has added the intervals.
 """
 
 from __future__ import annotations
@@ -68,21 +74,41 @@ def e_value_ci(estimate: float, ci_low: float, ci_high: float) -> float:
     return e_value(ci_low if estimate > 1 else ci_high)
 
 
-def e_value_rows(estimate_rows: list[dict]) -> list[dict]:
-    """One ``e_value`` row for every ``risk_ratio`` and ``hazard_ratio`` row (see module docs)."""
+def end_of_follow_up_risks(rows: list[dict]) -> dict[tuple, float]:
+    """(outcome, estimand, method) -> the larger arm risk at the latest horizon with a risk."""
+    latest: dict[tuple, tuple[float, float]] = {}
+    for r in rows:
+        if r.get("measure") != "risk" or r.get("comparator") or _missing(r.get("estimate")) \
+                or _missing(r.get("horizon_day")):
+            continue
+        k = (r.get("outcome"), r.get("estimand"), r.get("method"))
+        h, v = float(r["horizon_day"]), float(r["estimate"])
+        old = latest.get(k)
+        if old is None or h > old[0] or (h == old[0] and v > old[1]):
+            latest[k] = (h, v)
+    return {k: v for k, (_, v) in latest.items()}
+
+
+def e_value_rows(estimate_rows: list[dict], negative_controls=()) -> list[dict]:
+    """One ``e_value`` row for every adjusted ``risk_ratio`` and ``hazard_ratio`` row of an
+    outcome that is not a negative control (see module docs)."""
     out = []
+    risks = end_of_follow_up_risks(estimate_rows)
     for r in estimate_rows:
-        if r.get("measure") not in RATIO_MEASURES:
+        if (r.get("measure") not in RATIO_MEASURES or r.get("method") == "unadjusted"
+                or r.get("outcome") in negative_controls):
             continue
         est, lo, hi = r.get("estimate"), r.get("ci_low"), r.get("ci_high")
         if r["measure"] == "hazard_ratio":
-            n, events = r.get("n"), r.get("events")
-            common = bool(n) and not _missing(events) and events / n > RARE_OUTCOME_RISK
+            risk = risks.get((r.get("outcome"), r.get("estimand"), r.get("method")))
+            common = risk is None or risk > RARE_OUTCOME_RISK
             est, lo, hi = (hr_to_rr(x, common) if not _missing(x) else x for x in (est, lo, hi))
         e_ci = e_value_ci(est, lo, hi)
         row = {k: r.get(k) for k in ("outcome", "contrast", "estimand", "method", "horizon_day",
                                      "arm", "comparator", "n", "events")}
         row.update(measure="e_value", estimate=e_value(est),
                    ci_low=None if math.isnan(e_ci) else e_ci, ci_high=None, se=None)
+        if r.get("note") and _missing(r.get("estimate")):
+            row["note"] = r["note"]
         out.append(row)
     return out

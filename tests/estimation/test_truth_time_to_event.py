@@ -73,5 +73,7 @@ def test_hazard_ratio_and_e_values_are_reported(run):
     hr = est[(est.measure == "hazard_ratio") & (est.outcome == protocol.outcomes.primary)]
     assert set(hr.method) >= {"unadjusted", "ipw"} and (hr.estimate > 0).all()
     ev = est[est.measure == "e_value"]
-    assert len(ev) == int((est.measure.isin(["risk_ratio", "hazard_ratio"])).sum())
+    adjusted = est[est.measure.isin(["risk_ratio", "hazard_ratio"]) & (est.method != "unadjusted")
+                   & ~est.outcome.isin(protocol.outcomes.negative_controls)]
+    assert len(ev) == len(adjusted) and not ev.method.eq("unadjusted").any()
     assert (ev.estimate >= 1).all()
