@@ -109,11 +109,11 @@ def cmd_check(args: argparse.Namespace) -> int:
         from emulant.cohort.person_time import add_deviations, deviation_counts
 
         extract = open_extract(args.extract, protocol, _settings(args))
-        try:
-            if not protocol.per_protocol:
-                return build_cohort(extract, protocol, steps_only=True), None, None
-            # per protocol: the whole cohort (follow-up ends) and its deviation days
+        try:  # the whole cohort, so that its covariates can be checked too
             res = build_cohort(extract, protocol)
+            if not protocol.per_protocol:
+                return res, None, None
+            # per protocol: its deviation days too
             cohort = add_deviations(extract, protocol, res.cohort)
             return res, deviation_counts(cohort, protocol), None
         except CohortError as exc:
@@ -128,6 +128,9 @@ def cmd_check(args: argparse.Namespace) -> int:
     if deviations is not None:
         print("\nDeviations from the sustained strategies within follow-up, per arm:")
         print(deviations.to_string(index=False))
+    from emulant.cohort.covariates import single_value_covariates
+
+    _print_warnings(single_value_covariates(protocol, cohort.cohort))
     return EXIT_OK
 
 
@@ -258,9 +261,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     ck = sub.add_parser("check", help="validate an extract and a protocol, print the attrition",
                         description="Validate the protocol and the extract (every problem listed "
-                                    "at once), then run the eligibility steps alone and print "
-                                    "the attrition. A protocol asking for per_protocol also gets, "
-                                    "per arm, how many stopped or switched within follow-up. "
+                                    "at once), then build the cohort, print the attrition of the "
+                                    "eligibility steps and warn of covariates with a single value. "
+                                    "A protocol asking for per_protocol also gets, per arm, how "
+                                    "many stopped or switched within follow-up. "
                                     "Exit 0, or 2 when there is any problem.")
     ck.add_argument("--extract", required=True, metavar="PATH", help="folder of the extract's tables")
     ck.add_argument("--protocol", required=True, metavar="FILE", help="the protocol YAML file")

@@ -61,6 +61,18 @@ def test_check_valid_extract_prints_attrition(tmp_path, capsys):
     assert check["tables"]["persons"]["rows"] == 8
 
 
+def test_check_warns_of_a_covariate_with_a_single_value(tmp_path, capsys):
+    # every person of the tiny cohort starts in 2018 (hand computation, tests/tiny_extract.py):
+    # the calendar year is a constant, which adjusts for nothing (common practice, no source)
+    d = protocol_dict()
+    d["covariates"].append({"name": "entry_year", "builtin": "calendar_year", "kind": "categorical"})
+    rc, out, err = _run(capsys, "check", "--extract", str(write_extract(tmp_path / "extract")),
+                        "--protocol", str(write_protocol(tmp_path / "proto", d)))
+    assert rc == 0, err
+    assert ("covariates[4] (entry_year): a single value (2018) in all 4 persons of the cohort; "
+            "the models leave it out") in out
+
+
 def test_check_empty_cohort_names_the_step(tmp_path, capsys):
     _need("emulant.cohort", "the eligibility steps of `emulant check` live there")
     d = protocol_dict()

@@ -297,3 +297,18 @@ def covariate_kinds(protocol: Protocol, cohort: pd.DataFrame) -> dict[str, str]:
             values = values[cohort[flag] == 0]
         kinds[cov.name] = _kind_of(values, cov)
     return kinds
+
+
+def single_value_covariates(protocol: Protocol, cohort: pd.DataFrame) -> list[str]:
+    """One message per covariate with a single value in the cohort (e.g. ``sex`` in a
+    women-only extract): a constant adjusts for nothing, and the models leave it out."""
+    out = []
+    for i, cov in enumerate(protocol.covariates):
+        if cov.name not in cohort.columns or len(cohort) == 0:
+            continue
+        values = cohort[cov.name].dropna().unique()
+        if len(values) <= 1:
+            shown = values[0] if len(values) else "missing"
+            out.append(f"covariates[{i}] ({cov.name}): a single value ({shown}) in all "
+                       f"{len(cohort)} persons of the cohort; the models leave it out")
+    return out

@@ -93,6 +93,8 @@ class Term:
             if unknown:
                 raise DesignError(f"column '{self.source}' has level(s) {unknown} not seen when the "
                                   "design was built")
+            if not self.levels:  # a single level: no column (build_design lists it as dropped)
+                return np.empty((len(v), 0))
             return np.column_stack([(v == lev).to_numpy(float) for lev in self.levels])
         x = _as_numeric(s, self.source)
         if self.kind == "spline":
@@ -218,14 +220,15 @@ def build_design(cohort: pd.DataFrame, covariates: Iterable[Any], kinds: Mapping
     Design
         Categoricals are one-hot with the most frequent level as reference; binaries 0/1;
         a non-constant ``<name>_missing`` flag follows its covariate (not for categoricals, whose
-        ``missing`` level carries it). Constant columns and columns linear in the earlier ones
-        are dropped (and listed in ``Design.dropped``), so the matrix with an intercept has full
-        column rank.
+        ``missing`` level carries it). Constant columns (a categorical with a single level has
+        none), and columns linear in the earlier ones, are dropped and listed in
+        ``Design.dropped``, so the matrix with an intercept has full column rank.
     """
     if continuous not in CONTINUOUS:
         raise DesignError(f"analysis.propensity.continuous: expected one of {CONTINUOUS}, "
                           f"got {continuous!r}")
     terms: list[Term] = []
+    single: list[tuple[str, str]] = []
     for cov in covariates:
         name = getattr(cov, "name", cov)
         if name not in cohort.columns:
@@ -234,14 +237,17 @@ def build_design(cohort: pd.DataFrame, covariates: Iterable[Any], kinds: Mapping
             raise DesignError(f"no kind given for covariate '{name}'")
         term = _term(name, kinds[name], cohort[name], continuous)
         terms.append(term)
+        if term.kind == "categorical" and not term.levels:
+            single.append((name, f"a single level ({term.reference}) in the cohort: constant, "
+                                 "adjusts for nothing"))
         flag = columns.missing_flag(name)
         if term.kind != "categorical" and flag in cohort.columns:
             terms.append(_term(flag, "binary", cohort[flag], continuous))
-    if not terms:
-        return Design((), (), (), (), continuous)
+    if not any(t.columns for t in terms):
+        return Design(tuple(terms), (), (), tuple(single), continuous)
     full = np.column_stack([t.values(cohort) for t in terms])
     names = [c for t in terms for c in t.columns]
-    dropped: list[tuple[str, str]] = []
+    dropped: list[tuple[str, str]] = list(single)
     const = np.ptp(full, axis=0) == 0 if len(full) else np.ones(full.shape[1], dtype=bool)
     dropped += [(names[j], "constant") for j in np.flatnonzero(const)]
     idx = [j for j in range(full.shape[1]) if not const[j]]

@@ -204,3 +204,21 @@ def test_fit_weights_returns_the_contract_columns_and_positivity():
     e, a = wdf2["propensity"].to_numpy(), cohort["treated"].to_numpy()
     np.testing.assert_allclose(wdf2[columns.weight("ATE")],
                                np.where(a == 1, a.mean() / e, (1 - a.mean()) / (1 - e)))
+
+
+def test_a_covariate_with_a_single_level_is_left_out_with_a_note():
+    # a women-only extract, or an entry window inside one year: the covariate is constant and
+    # carries no information (common practice, no source); the fit must not crash on it. With
+    # the constant left out the weights equal those of the same model without it.
+    cohort = _cohort().assign(region="r1")
+    protocol = _protocol(estimands=("ATE",))
+    fit = fit_weights(cohort, protocol)
+    pos = positivity_of(fit, protocol)
+    assert {"column": "region", "reason": "a single level (r1) in the cohort: constant, adjusts "
+            "for nothing"} in pos["model"]["dropped"]
+    assert not any(c.startswith("region") for c in pos["model"]["columns"])
+    without = two_arm_protocol(
+        "weights-test", covariates=[c for c in protocol.as_dict()["covariates"]
+                                    if c["name"] != "region"], estimands=["ATE"])
+    ref = fit_weights(cohort, without)
+    np.testing.assert_allclose(fit.table["propensity"], ref.table["propensity"], rtol=1e-10)
