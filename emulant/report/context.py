@@ -153,7 +153,7 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
                    measured_missing=[],
                    bootstrap=None, comparison=None)
 
-    ctx["warnings"] = narrative.warnings(p, raw, events, design)
+    ctx["warnings"] = narrative.warnings(p, raw, events, design, ctx["negative_controls"])
     ctx["trial"] = narrative.emulation_rows(p, att, ctx["bootstrap"], design)
     ctx["assumptions"] = narrative.assumptions(p, ctx, design)
     ctx["manifest"] = manifest_context(manifest) if manifest else None

@@ -25,6 +25,10 @@ COMPONENTS = (
 )
 FEW_EVENTS = 10  # events per arm below which a warning is raised (common practice, no single source)
 ESS_SHARE, ESS_MIN = 0.25, 100  # ESS below 25% of the arm's n, or below 100, is small (our choice)
+# Positivity warnings need a share that matters, not one person: more than 1% of the cohort with
+# an extreme propensity, or the top 1% of weights carrying more than 10% of an estimand's total
+# weight (both our choice, common practice has no single threshold)
+EXTREME_SHARE, TOP1_SHARE = 0.01, 0.10
 
 
 def _concept(p: Protocol, name: str) -> str:
@@ -106,8 +110,10 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
             for k, label in COMPONENTS]
 
 
-def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design: bool) -> list[dict]:
-    """Failed diagnostics, each with the section that shows it."""
+def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design: bool,
+             negative_controls: list[dict] = ()) -> list[dict]:
+    """Failed diagnostics, each with the section that shows it; the assumptions' verdicts are
+    read from these (:func:`assumptions`), so the panel and the verdicts agree."""
     out: list[dict] = []
     m = p.report.min_cell
     thr = p.analysis.smd_threshold
@@ -125,12 +131,20 @@ def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design:
     if pos:
         ext = pos.get("extreme") or {}
         share = ext.get("share")
-        if share is not None and float(share) > 0:
+        if share is not None and float(share) > EXTREME_SHARE:
             out.append({"section": "positivity", "text":
                         f"Extreme propensity scores: {dc.show_count(ext.get('n'), m)} persons "
-                        f"below {fmt.sig(ext.get('low'))} or above {fmt.sig(ext.get('high'))}."})
+                        f"({dc.show_percent(ext.get('n'), sum(float(v) for v in (pos.get('n') or {}).values()), m) or 'a share'}"
+                        f", above {EXTREME_SHARE:.0%} of the cohort) below "
+                        f"{fmt.sig(ext.get('low'))} or above {fmt.sig(ext.get('high'))}."})
         n = pos.get("n") or {}
         for est, w in (pos.get("weights") or {}).items():
+            top = w.get("top1pct_share")
+            if top is not None and float(top) > TOP1_SHARE:
+                out.append({"section": "positivity", "text":
+                            f"Weight concentration under {est} weights: the top 1% of persons "
+                            f"carry {fmt.num(100 * float(top), 1)}% of the total weight (above "
+                            f"{TOP1_SHARE:.0%})."})
             for arm, ess in (w.get("ess") or {}).items():
                 na = n.get(arm)
                 if ess is None or na is None:
@@ -148,6 +162,12 @@ def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design:
                 out.append({"section": "results", "text":
                             f"Few events: fewer than {FEW_EVENTS} primary-outcome events in "
                             f"{arm}."})
+        for nc in negative_controls:
+            if nc["includes_null"] is False:
+                out.append({"section": "assumptions", "text":
+                            f"Negative control {nc['outcome']} ({nc['estimand']}, {nc['method']}, "
+                            f"{nc['measure']}): the adjusted interval excludes the null, a sign "
+                            "of residual confounding."})
         est = raw.get("estimates")
         if est is not None and "note" in est.columns:
             gone = est[est["estimate"].isna() & est["note"].fillna("").astype(str).str.startswith("not estimable")]
@@ -191,6 +211,8 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
     warn = ctx["warnings"]
     bal_w = [w["text"] for w in warn if w["section"] == "baseline"]
     pos_w = [w["text"] for w in warn if w["section"] == "positivity"]
+    nc_w = [w["text"] for w in warn if w["section"] == "assumptions"
+            and w["text"].startswith("Negative control")]
     exch = [f"Adjustment set: {', '.join(c.name for c in p.covariates)}."]
     if ctx.get("baseline"):
         exch.append("Balance after weighting: " + (" ".join(bal_w) if bal_w else
@@ -230,8 +252,7 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
         {"id": "exchangeability", "name": "Exchangeability given the named covariates",
          "statement": "Within levels of the adjustment set, the arm a person started is "
                       "independent of the outcome they would have under either strategy.",
-         "evidence": exch, "threat": bool(bal_w) or any(
-             nc["includes_null"] is False for nc in ctx.get("negative_controls") or [])},
+         "evidence": exch, "threat": bool(bal_w or nc_w)},
         {"id": "positivity", "name": "Positivity",
          "statement": "Every covariate pattern in the cohort has a non-zero chance of starting "
                       "either arm.", "evidence": posev, "threat": bool(pos_w)},

@@ -120,22 +120,21 @@ def measure_label(measure: str, protocol: Protocol) -> str:
 
 
 def negative_controls(est: pd.DataFrame | None, protocol: Protocol) -> list[dict]:
-    """Contrast estimates of each negative-control outcome and whether the interval holds the null.
+    """Adjusted contrast estimates of each negative-control outcome and whether the interval
+    holds the null.
 
-    A negative-control outcome should not be affected by the strategies, so an interval that
-    excludes the null points to residual confounding (Lipsitch, Tchetgen Tchetgen & Cohen, 2010,
-    Epidemiology 21:383-388).
+    A negative-control outcome should not be affected by the strategies, so an adjusted interval
+    that excludes the null points to residual confounding (Lipsitch, Tchetgen Tchetgen & Cohen,
+    2010, Epidemiology 21:383-388). The unadjusted comparison is expected to be confounded (that
+    is why the analysis adjusts) and says nothing about what adjustment left: it is not listed.
     """
     out = []
     if est is None:
         return out
-    m = protocol.report.min_cell
-    small = small_event_arms(est, m)
     for o in protocol.outcomes.negative_controls:
-        g = est[(est["outcome"].astype(str) == o) & est["measure"].isin(list(NULL))]
+        g = est[(est["outcome"].astype(str) == o) & est["measure"].isin(list(NULL))
+                & (est["method"].astype(str) != "unadjusted")]
         for r in g.itertuples(index=False):
-            if r.method == "unadjusted" and any(oo == o for oo, _ in small):
-                continue
             lo, hi, null = _num(r.ci_low), _num(r.ci_high), NULL[r.measure]
             holds = None if math.isnan(lo) or math.isnan(hi) else bool(lo <= null <= hi)
             out.append({"outcome": o, "estimand": fmt.text(r.estimand) or "unadjusted",

@@ -357,6 +357,50 @@ def test_a_ratio_without_estimate_says_why(full):
     assert "admission, ATE, ipw, risk_ratio, day 1,095: 2 of 19 replicates not estimable" in html
 
 
+def _threatened(html: str, aid: str) -> bool:
+    start = html.index(f'id="assumption-{aid}"')
+    return "threatened in this run" in html[start:html.index("</article>", start)]
+
+
+def _render_with(tmp_path, nc_low: float, extreme_n: int, method: str) -> str:
+    """The fixture's results with one negative-control ratio and the extreme-score count edited."""
+    res = tmp_path / "results"
+    write_results(res)
+    est = pd.read_csv(res / "estimates.csv")
+    row = est[est.outcome == "fracture"].iloc[[0]].assign(
+        method=method, estimand="" if method == "unadjusted" else "ATE", ci_low=nc_low,
+        ci_high=nc_low + 0.5, estimate=nc_low + 0.2)
+    pd.concat([est[est.outcome != "fracture"], row]).to_csv(res / "estimates.csv", index=False)
+    bal = pd.read_csv(res / "balance.csv")
+    bal.assign(smd_weighted=0.01).to_csv(res / "balance.csv", index=False)  # balanced
+    pos = json.loads((res / "positivity.json").read_text())
+    pos["n"] = {"class_a": 10893, "class_b": 10893}
+    pos["extreme"].update(n=extreme_n, share=extreme_n / 21786)
+    for w in pos["weights"].values():
+        w["ess"] = {"class_a": 9000.0, "class_b": 9500.0}
+    (res / "positivity.json").write_text(json.dumps(pos))
+    protocol = _protocol(tmp_path)
+    return render_report(res, protocol, tmp_path / "r.html", MANIFEST, COMPARISON).read_text()
+
+
+def test_diagnostics_do_not_cry_wolf(tmp_path):
+    # one person in 21,786 with an extreme propensity, and an unadjusted negative-control
+    # interval that excludes the null (the crude comparison is confounded by design): neither
+    # threatens an assumption, and the warnings panel says nothing of them. A negative control
+    # speaks through the adjusted estimates (Lipsitch, Tchetgen Tchetgen & Cohen 2010); the
+    # positivity rule (more than 1% extreme, or the top 1% carrying over 10% of the weight) is
+    # our choice, stated in the report's code.
+    html = _render_with(tmp_path / "calm", nc_low=1.2, extreme_n=1, method="unadjusted")
+    assert not _threatened(html, "positivity") and not _threatened(html, "exchangeability")
+    assert "Extreme propensity scores" not in html and "Negative control fracture" not in html
+    # 2% extreme and an adjusted interval excluding the null: both warned, both threatened
+    html = _render_with(tmp_path / "alarm", nc_low=1.2, extreme_n=436, method="ipw")
+    assert _threatened(html, "positivity") and _threatened(html, "exchangeability")
+    warn = html[html.index('id="warnings"'):html.index("</section>", html.index('id="warnings"'))]
+    assert "Extreme propensity scores: 436 persons (2.0%, above 1% of the cohort)" in warn
+    assert "Negative control fracture (ATE, inverse probability weighting, risk ratio)" in warn
+
+
 def test_render_is_deterministic(full, tmp_path):
     tmp, protocol, html = full
     again = render_report(tmp / "results", protocol, tmp_path / "again.html", MANIFEST,
