@@ -7,6 +7,7 @@ cohort.parquet (one row per person):
     end_day, end_reason                       -- the primary time-to-event outcome (if any)
     end_day__<o>, end_reason__<o>             -- every time-to-event outcome o (primary included)
     value__<m>, measured__<m>, baseline__<m>  -- every measured outcome m (value NaN when unmeasured)
+    died_before__<m>                          -- 0/1: died on a day from 0 to at_day - 1 (measured outcome m)
     coverage_end_day                          -- last day of the merged coverage period holding day 0
     stop_day, switch_day, deviation_day, deviation_reason   -- with per_protocol only (§5b)
 periods.parquet: person_id, arm, period, start_day, deviated, each time-varying covariate (and
@@ -41,6 +42,10 @@ def measured(measure: str) -> str:
 
 def baseline(measure: str) -> str:
     return f"baseline__{measure}"
+
+
+def died_before(measure: str) -> str:
+    return f"died_before__{measure}"
 
 
 def weight(estimand: str) -> str:

@@ -69,6 +69,8 @@ def test_first_run_writes_every_result(workdir):
         assert f'id="{section}"' in html, section
     # the demo's measured outcome (missing: censor) states the assumption its missing values rest on
     assert "missing at random given arm and the covariates" in html
+    # deaths before the measurement day are missing at random too: said, and counted by arm
+    assert "as if no one had died before the measurement" in html and "Died before day 365: " in html
     links = re.findall(r'(?:src|href)="([^"]*)"', html)
     assert all(link.startswith("#") for link in links) and "<script" not in html
 

@@ -44,6 +44,7 @@ from emulant.cohort.covariates import (
 from emulant.extract import Extract
 from emulant.progress import Progress
 from emulant.protocol import Protocol
+from emulant.protocol.model import DEATH
 
 
 @dataclass
@@ -190,6 +191,8 @@ def _plan_values(pl: Planner, p: Protocol, steps_only: bool) -> None:
     if steps_only:
         return
     first_day = lambda c: f"min(day) FILTER (WHERE {c})"  # noqa: E731
+    for j, m in enumerate(p.outcomes.measured()):  # deaths before at_day: the report counts them
+        pl.add(f"md_{j}", DEATH, None, 0, m.at_day - 1, first_day)
     for j, o in enumerate(p.outcomes.time_to_event()):
         pl.add(f"od_{j}", o, None, 1, p.follow_up.max_days, first_day)
     if p.outcomes.competing:
@@ -315,7 +318,8 @@ def _cohort_frame(con, p: Protocol) -> pd.DataFrame:
     for j, m in enumerate(p.outcomes.measured()):
         sel += [f"mv_{j} AS {q(C.value(m.measure))}",
                 f"CAST(mv_{j} IS NOT NULL AS INTEGER) AS {q(C.measured(m.measure))}",
-                f"mb_{j} AS {q(C.baseline(m.measure))}"]
+                f"mb_{j} AS {q(C.baseline(m.measure))}",
+                f"CAST(md_{j} IS NOT NULL AS INTEGER) AS {q(C.died_before(m.measure))}"]
     sel.append("coverage_end_day")
     df = con.execute(f"SELECT {', '.join(sel)} FROM _c_all WHERE first_fail IS NULL "
                      "ORDER BY person_id").df()

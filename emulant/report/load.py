@@ -53,12 +53,12 @@ def design_columns(protocol: Protocol) -> list[str]:
 
 def outcome_columns(protocol: Protocol) -> list[str]:
     """The cohort's outcome columns: follow-up of every time-to-event outcome (primary
-    included) and whether each measured outcome was measured."""
+    included), whether each measured outcome was measured and who died before its day."""
     out = ["end_day", "end_reason"]
     for o in protocol.outcomes.time_to_event():
         out += [col.end_day(o), col.end_reason(o)]
     for m in protocol.outcomes.measured():
-        out.append(col.measured(m.measure))
+        out += [col.measured(m.measure), col.died_before(m.measure)]
     return out
 
 

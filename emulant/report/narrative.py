@@ -190,12 +190,18 @@ def _missing_outcome(p: Protocol, mm: dict) -> dict:
                      "outcome_measured). The estimate is unbiased for the eligible population only "
                      "if being measured is unrelated to the outcome given arm and the covariates "
                      "and the effect is the same among the measured and the unmeasured; "
-                     "otherwise it is the effect among the measured.")
+                     "otherwise it is the effect among the measured. Persons who died before "
+                     f"day {mm['at_day']} have no measurement and leave too: the estimate is "
+                     "among survivors, a group the strategies themselves may select.")
         how = "Complete cases: the unmeasured were excluded at the step outcome_measured."
     else:
         statement = ("Values missing in the window are missing at random given arm and the "
                      "covariates: whether a person was measured does not depend on the value "
-                     "itself once these are accounted for.")
+                     "itself once these are accounted for. Persons who died before day "
+                     f"{mm['at_day']} are treated the same way, as missing at random through the "
+                     "censoring weights: the estimate is the mean as if no one had died before "
+                     "the measurement, a hypothetical in which death is prevented, not the mean "
+                     "among survivors.")
         how = ("Inverse probability of being measured weights, from a logistic model of being "
                "measured given arm and the covariates, in every adjusted method (the crude "
                "comparison uses the measured alone).")

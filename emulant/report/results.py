@@ -272,6 +272,15 @@ def measured_missing(cohort: pd.DataFrame | None, protocol: Protocol) -> list[di
                 hide = dc.suppress_binary(k, n, m)
                 arms.append(f"{a}: {dc.show_count(k, m, hide)} of {dc.show_count(n, m)} measured"
                             + (f" ({dc.show_percent(k, n, m, hide)})" if not hide else ""))
+        died = col.died_before(o.measure)
+        if cohort is not None and died in cohort:
+            cells = []
+            for a in protocol.strategies.arm_names:
+                s = cohort.loc[cohort["arm"].astype(str) == a, died]
+                k, n = int(s.sum()), int(len(s))
+                hide = dc.suppress_binary(k, n, m)
+                cells.append(f"{a} {dc.show_count(k, m, hide)} of {dc.show_count(n, m)}")
+            arms.append(f"Died before day {o.at_day}: {'; '.join(cells)}.")
         out.append({"outcome": o.measure, "missing": o.missing, "at_day": o.at_day,
                     "tolerance": o.tolerance_days, "arms": arms})
     return out

@@ -336,6 +336,16 @@ def test_measured_outcome_nearest_tie_and_tolerance(tmp_path):
     assert "end_day" not in c.columns and "outcome_measured" not in res.attrition.step.tolist()
 
 
+def test_deaths_before_the_measurement_day(tmp_path):
+    # at_day 365 is 2019-06-01 (hand computation): 1 dies on day 364 (before), 2 on day 365 (not
+    # before), 3 on day 0 (before), 4 never; the report counts these deaths by arm
+    deaths = [(1, "2019-05-31"), (2, "2019-06-01"), (3, T0)]
+    res = run(tmp_path, persons=[1, 2, 3, 4], disp=[(i, T0, "RXA1") for i in range(1, 5)],
+              deaths=deaths, proto=MEASURED)
+    c = res.cohort.set_index(res.cohort.person_id.astype(int))
+    assert c.loc[[1, 2, 3, 4], "died_before__lab"].tolist() == [1, 0, 1, 0]
+
+
 def test_measured_change_from_baseline_and_complete_case(tmp_path):
     proto = merge(MEASURED, {"outcomes": {"primary": {"change_from_baseline": True,
                                                       "missing": "complete_case"}}})
