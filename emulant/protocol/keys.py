@@ -66,7 +66,7 @@ def _criterion(p: str, what: str) -> tuple[Key, ...]:
     return (
         Key(f"{p}[]", "mapping", f"one {what}: a concept and a window", example={"concept": "cmd", "window": [-1825, 0]}),
         Key(f"{p}[].concept", "concept", "the concept whose records are looked for", REQUIRED, example="cmd"),
-        Key(f"{p}[].window", "window", "days relative to time zero, both ends included", REQUIRED, example=[-1825, 0],
+        Key(f"{p}[].window", "window", "days relative to time zero, both ends included; must end on or before day 0", REQUIRED, example=[-1825, 0],
             rule="a window [a, b] holds the records on days a <= k <= b, day 0 being time zero"),
     )
 
@@ -76,7 +76,7 @@ def _measured(p: str) -> tuple[Key, ...]:
         Key(f"{p}.measure", "concept", "the measured concept (source measurements, numeric value)", REQUIRED, example="marker"),
         Key(f"{p}.at_day", "integer", "the day after time zero the value is wanted for", REQUIRED, minimum=1, example=365),
         Key(f"{p}.tolerance_days", "integer", "how far from at_day a measurement may lie", 30, minimum=0, example=60,
-            rule="the value is the record nearest at_day within [at_day - tolerance_days, at_day + tolerance_days], the earlier on a tie; follow_up.max_days must reach at_day + tolerance_days"),
+            rule="the value is the record nearest at_day within [at_day - tolerance_days, at_day + tolerance_days], the earlier on a tie; at_day - tolerance_days must be at least 1 (after time zero); follow_up.max_days must reach at_day + tolerance_days"),
         Key(f"{p}.change_from_baseline", "boolean", "subtract the baseline value (the last value in [-tolerance_days, 0])", False, example=True),
         Key(f"{p}.missing", "choice", "what a person without the measurement means", "censor", ("censor", "complete_case"), example="censor",
             rule="censor: inverse probability of censoring weights from a logistic model of being measured; complete_case: eligibility step outcome_measured"),
@@ -169,7 +169,7 @@ KEYS: tuple[Key, ...] = (
     Key("covariates[].attribute", "text", "a column of the persons table", None, example="region"),
     Key("covariates[].concept", "concept", "a concept summarised over the window", None, example="cardio_event"),
     Key("covariates[].source", "text", "a whole extract source summarised over the window", None, example="dispensings"),
-    Key("covariates[].window", "window", "days relative to time zero (concept and source covariates)", None, example=[-365, -1]),
+    Key("covariates[].window", "window", "days relative to time zero (concept and source covariates); must end on or before day 0", None, example=[-365, -1]),
     Key("covariates[].summary", "choice", "how the window's records become one value", None, SUMMARIES, example="any",
         default_note="any for a concept or source covariate",
         rule="any 0/1; count and distinct_codes 0 without a record; last (latest day, largest value on a tie), mean, min, max need numeric values and are missing without a record"),
