@@ -91,8 +91,8 @@ def node(k: Key) -> dict[str, Any]:
 
 
 def protocol_schema() -> dict[str, Any]:
-    """The whole protocol's JSON Schema (draft 2020-12)."""
-    return {"$schema": "https://json-schema.org/draft/2020-12/schema",
+    """The whole protocol's JSON Schema (draft-07, the draft editors read most widely)."""
+    return {"$schema": "http://json-schema.org/draft-07/schema#",
             "title": "emulant protocol",
             "description": "A target trial and its emulation (emulant). Generated from emulant/protocol/keys.py.",
             **_object("")}

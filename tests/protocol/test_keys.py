@@ -109,12 +109,13 @@ def test_every_key_the_readers_read_is_in_the_table(recorded):
                 problems.append(f"'{path}': the reader knows {sorted(info['known'])}, the table {sorted(keys.known(path))}")
             if set(info["required"]) != set(keys.required(path)):
                 problems.append(f"'{path}': the reader requires {sorted(info['required'])}, the table {sorted(keys.required(path))}")
-        if method == "choice" and tuple(info["options"]) != tuple(row.allowed):
+        # a reader may narrow the table's values by other keys (e.g. to the methods asked for)
+        if method == "choice" and not set(info["options"]) <= set(row.allowed):
             problems.append(f"'{path}': the reader allows {info['options']}, the table {row.allowed}")
         if method == "integer" and info["minimum"] != row.minimum:
             problems.append(f"'{path}': the reader's minimum is {info['minimum']}, the table's {row.minimum}")
         scalar_default = method in ("integer", "number", "boolean", "choice") and not path.endswith("[]")
-        if scalar_default and not row.required and info["default"] != row.default:
+        if scalar_default and not row.required and not row.default_note and info["default"] != row.default:
             problems.append(f"'{path}': the reader's default is {info['default']!r}, the table's {row.default!r}")
     assert not problems, "\n".join(problems) + "\n" + HOW
 

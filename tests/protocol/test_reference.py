@@ -1,6 +1,6 @@
 """The protocol's reference documents and JSON Schema agree with the parser.
 
-The reference validator is the `jsonschema` package (Draft 2020-12), an outside implementation of
+The reference validator is the `jsonschema` package (Draft 7), an outside implementation of
 the JSON Schema specification: every example protocol must pass it, and a sample of protocols the
 parser rejects must fail it too. The documents must be exactly what the key table writes.
 """
@@ -34,8 +34,8 @@ def as_json(data):
 @pytest.fixture(scope="module")
 def validator():
     schema = protocol_schema()
-    jsonschema.Draft202012Validator.check_schema(schema)
-    return jsonschema.Draft202012Validator(schema)
+    jsonschema.Draft7Validator.check_schema(schema)
+    return jsonschema.Draft7Validator(schema)
 
 
 def test_protocol_doc_is_up_to_date():
