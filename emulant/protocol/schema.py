@@ -87,6 +87,8 @@ def node(k: Key) -> dict[str, Any]:
         s = _plain(k)
     if not k.required:  # null (or nothing) means the default
         s = {"anyOf": [s, {"type": "null"}]}
+        if k.default not in (None, {}) and not k.default_note:
+            s["default"] = k.default  # editors offer it on completion
     return {"description": _description(k), **s}
 
 

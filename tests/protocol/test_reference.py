@@ -57,6 +57,20 @@ def test_every_key_is_documented_and_in_the_schema():
             assert f'"{k.name}"' in text, k.path
 
 
+def test_schema_defaults_are_valid_values(validator):
+    """Each default the schema offers an editor is a value the schema itself accepts."""
+    def walk(node):
+        if isinstance(node, dict):
+            if "default" in node:
+                assert jsonschema.Draft7Validator({k: v for k, v in node.items() if k != "default"}).is_valid(node["default"])
+            for v in node.values():
+                walk(v)
+        elif isinstance(node, list):
+            for v in node:
+                walk(v)
+    walk(protocol_schema())
+
+
 def test_schema_command_prints_the_schema(capsys):
     assert cli.main(["schema"]) == 0
     assert json.loads(capsys.readouterr().out) == protocol_schema()
