@@ -92,6 +92,34 @@ def as_input(p: Protocol) -> dict[str, Any]:
     }
 
 
+def _leaf(v: Any) -> bool:
+    return not isinstance(v, dict | list) or (not v) or (isinstance(v, list) and all(map(_leaf, v)) and
+                                                          not any(isinstance(x, dict | list) and x for x in v))
+
+
+class _Dumper(yaml.SafeDumper):
+    """Short lists and mappings of plain values on one line, as a user writes them."""
+
+
+def _list(d: yaml.SafeDumper, v: list) -> yaml.Node:
+    return d.represent_sequence("tag:yaml.org,2002:seq", v, flow_style=all(_leaf(x) for x in v))
+
+
+def _dict(d: yaml.SafeDumper, v: dict) -> yaml.Node:
+    flow = bool(v) and all(_leaf(x) and len(str(x)) < 40 for x in v.values())
+    return d.represent_mapping("tag:yaml.org,2002:map", v.items(), flow_style=flow)
+
+
+_Dumper.add_representer(list, _list)
+_Dumper.add_representer(dict, _dict)
+
+
 def as_input_yaml(p: Protocol) -> str:
-    """:func:`as_input` as YAML text, keys in the input's order."""
-    return yaml.safe_dump(as_input(p), sort_keys=False, allow_unicode=True, width=96)
+    """:func:`as_input` as YAML text, keys in the input's order, short parts on one line."""
+    d = as_input(p)
+    for section, key in (("eligibility", "entry"), ("follow_up", None)):  # dates written plain
+        node = d[section][key] if key else d[section]
+        for k in ("start", "end", "administrative_end"):
+            if isinstance(node.get(k), str):
+                node[k] = dt.date.fromisoformat(node[k])
+    return yaml.dump(d, Dumper=_Dumper, sort_keys=False, allow_unicode=True, width=96)

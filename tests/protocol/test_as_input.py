@@ -65,3 +65,14 @@ def test_defaults_are_written_out():
 def test_every_parsed_key_comes_out(path):
     d = as_input(load_protocol(path))
     assert tuple(d) == keys.known("")
+
+
+def test_date_like_text_stays_text(tmp_path):
+    d = yaml.safe_load((ROOT / "tests" / "protocol" / "every_key.yaml").read_text())
+    d["study"]["title"] = "2020-01-01"
+    d["concepts"]["event"]["where"]["ward"] = "2021-02-03"
+    f = tmp_path / "p.yaml"
+    f.write_text(yaml.safe_dump(d, sort_keys=False))
+    p = load_protocol(f)
+    f.write_text(as_input_yaml(p))
+    assert _bare(load_protocol(f)) == _bare(p)
