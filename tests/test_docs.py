@@ -67,7 +67,8 @@ def _worked_extract(folder: Path) -> Path:
                      ("p3", "2014-01-01", "2022-12-31"), ("p4", "2010-01-01", "2022-12-31")],
         "dispensings": [("p1", "2018-06-15", "RXK1", 30), ("p1", "2019-01-10", "RXP1", 30),
                         ("p2", "2017-06-01", "RXP2", 30), ("p3", "2016-09-01", "RXP1", 30),
-                        ("p3", "2017-04-01", "RXP1", 30), ("p4", "2019-03-01", "RXP1", 30)],
+                        ("p3", "2017-04-01", "RXP1", 30), ("p4", "2019-03-01", "RXP1", 30),
+                        ("p4", "2019-03-26", "RXP1", 30), ("p4", "2019-06-29", "RXP1", 30)],
         "diagnoses": [("p1", "2016-03-01", "CMD", "outpatient"), ("p1", "2020-02-01", "HFX", "inpatient"),
                       ("p2", "2016-08-01", "CMD", "outpatient"), ("p3", "2015-02-01", "CMD", "outpatient"),
                       ("p4", "2018-01-05", "CMD", "outpatient")],
@@ -102,3 +103,24 @@ def test_worked_example_of_the_initiators_design(tmp_path):
     p4 = res.cohort.set_index("person_id").loc["p4"]
     assert (p4["arm"], str(pd.Timestamp(p4["time_zero"]).date())) == ("plover", "2019-03-01")
     assert (int(p4["end_day"]), p4["end_reason"]) == (1095, "max_follow_up")
+
+
+def test_worked_example_of_a_sustained_strategy(tmp_path):
+    import yaml
+
+    from emulant.cohort import build_cohort
+    from emulant.cohort.person_time import add_deviations
+    from emulant.extract import open_extract
+    from emulant.protocol import parse_protocol
+
+    folder = ROOT / "config" / "protocols"
+    d = yaml.safe_load((folder / "demo.yaml").read_text())
+    for arm in d["strategies"]["arms"].values():
+        arm["sustain"] = {"gap_days": 60}
+    d["contrasts"] = ["intention_to_treat", "per_protocol"]
+    protocol = parse_protocol(d, folder)
+    ex = _worked_extract(tmp_path / "ex")
+    cohort = add_deviations(open_extract(ex, protocol), protocol,
+                            build_cohort(open_extract(ex, protocol), protocol).cohort)
+    p4 = cohort.set_index("person_id").loc["p4"]
+    assert (p4["stop_day"], p4["deviation_day"], p4["deviation_reason"]) == (120, 120, "stopped")

@@ -1,8 +1,8 @@
 """Every example protocol under config/protocols/ runs end to end on a small synthetic extract.
 
 The extract is the invented registry (synthetic_cohort/) with 3,000 persons; each example goes
-through the extract check, the cohort, the weights and the estimates with two bootstrap
-replicates. This checks that the examples are usable as written; the estimators themselves are
+through the extract check, the cohort (and, with per_protocol, the deviations and
+periods.parquet), the weights and the estimates with two bootstrap replicates. This checks that the examples are usable as written; the estimators themselves are
 checked against outside references and the registry's truth elsewhere.
 """
 
@@ -30,7 +30,7 @@ def extract(tmp_path_factory) -> Path:
 
 
 @pytest.mark.parametrize("path", EXAMPLES, ids=lambda p: p.stem)
-def test_example_runs_on_a_small_extract(path, extract):
+def test_example_runs_on_a_small_extract(path, extract, tmp_path):
     from emulant.cohort import build_cohort
     from emulant.estimation.effects import estimate_effects
     from emulant.extract import check_extract, open_extract
@@ -42,6 +42,12 @@ def test_example_runs_on_a_small_extract(path, extract):
     check_extract(extract, p)
     res = build_cohort(open_extract(extract, p), p)
     assert len(res.cohort) > 100 and set(res.cohort["arm"]) == set(p.strategies.arm_names)
+    if p.per_protocol:  # person-time: deviations in the cohort, then periods.parquet
+        from emulant.cohort.person_time import add_deviations, build_periods
+
+        cohort = add_deviations(open_extract(extract, p), p, res.cohort)
+        assert cohort["deviation_reason"].isin(["stopped"]).any() and cohort["deviation_reason"].isin(["switched"]).any()
+        assert build_periods(open_extract(extract, p), p, cohort, tmp_path / "periods.parquet") > len(cohort)
     fit_weights(res.cohort, p)
     est = estimate_effects(res.cohort, p, workers=1).estimates
     primary = est[est["outcome"] == outcome_name(p.outcomes.primary)]
