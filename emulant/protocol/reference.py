@@ -62,6 +62,8 @@ def _yaml_inline(v) -> str:
 
 
 def _default(k: Key) -> str:
+    if k.path.endswith("[]") or k.path.endswith("*"):
+        return ""  # an item of a list or a named entry: present or not, no default
     if k.required:
         return "**required**"
     if k.default_note:

@@ -56,7 +56,9 @@ def _plain(k: Key) -> dict[str, Any]:
     if t == "date":
         return {"type": "string", "pattern": DATE_PATTERN, "format": "date"}
     if t == "window":
-        return {"type": "array", "items": {"type": "integer"}, "minItems": 2, "maxItems": 2}
+        # [a, b]: whole days, b <= 0 (a record after the day it describes would decide the past)
+        return {"type": "array", "items": [{"type": "integer"}, {"type": "integer", "maximum": 0}],
+                "minItems": 2, "maxItems": 2}
     if t == "quantiles":
         return {"type": "array", "items": {"type": "number", "minimum": 0, "maximum": 1},
                 "minItems": 2, "maxItems": 2}

@@ -120,6 +120,7 @@ REJECTED = {
     "bad choice": _set(("strategies", "same_day"), "both"),
     "bad estimand": _set(("estimands",), ["ATX"]),
     "bad method": _set(("analysis", "methods"), ["magic"]),
+    "window ending after day 0": _set(("eligibility", "require"), [{"concept": "t2d", "window": [-30, 10]}]),
     "window of three": _set(("eligibility", "require"), [{"concept": "t2d", "window": [-1, 0, 1]}]),
     "truncate out of range": _set(("analysis", "weights", "truncate"), [0.5, 1.5]),
     "boolean as text": _set(("analysis", "hazard_ratio"), "yes"),
