@@ -183,6 +183,7 @@ def estimate_effects(input: Any, output: Any, params: Any) -> None:
     write_csv(output.estimates, res.estimates)
     write_csv(output.curves, res.curves)
     write_json(output.bootstrap, res.bootstrap)
+    write_csv(output.decision, res.decision)
 
 
 def render_report(input: Any, output: Any, params: Any) -> None:

@@ -38,7 +38,8 @@ CODELISTS = HERE / "codelists"
 TABLES = ("persons", "coverage", "dispensings", "diagnoses", "measurements", "deaths")
 FORMATS = ("parquet", "csv")
 CSV_OPTIONS = pacsv.WriteOptions(quoting_style="needed")
-OUTCOME_PARAMS = {"hf_admission": P.PRIMARY, "lens_opacity": P.NEGATIVE_CONTROL}
+OUTCOME_PARAMS = {"hf_admission": P.PRIMARY, "lens_opacity": P.NEGATIVE_CONTROL,
+                  "death": P.DEATH}  # all-cause death, for the decision summary
 NOT_FOLLOWED = ("never_initiates", "arm_record_after_death", "initiated_before_window")
 
 
@@ -138,7 +139,8 @@ def _truth(protocol: Protocol, cohort: rules.Cohort, x: dict, persons: int, seed
             "strategy (constant cause-specific hazards, death competing, no censoring) "
             "averaged over the eligible cohort; ATT averages over kestrel initiators. "
             "Conditional hazard ratio kestrel/plover: 0.7 for hf_admission, 1 for lens_opacity "
-            "(negative control); marker near day 365: -4.0 under kestrel."),
+            "(negative control), 1 for death (all-cause, no competing event); marker near "
+            "day 365: -4.0 under kestrel."),
     })
 
 

@@ -78,7 +78,8 @@ def time_to_event_truth(x: dict[str, np.ndarray], arm: np.ndarray, par: dict,
     risks = {}
     for a in P.ARMS:
         h = np.exp(log_rate(par, x, a))
-        hd = np.exp(log_rate(P.DEATH, x, a))
+        # all-cause death as the outcome has no competing event
+        hd = np.zeros_like(h) if par is P.DEATH else np.exp(log_rate(P.DEATH, x, a))
         risks[a] = np.stack([cumulative_incidence(h, hd, float(t)) for t in horizons])
     groups = {"ATE": np.ones(len(arm), bool), "ATT": arm == P.ARMS.index(treated)}
     out = {}

@@ -194,7 +194,10 @@ def _plan_values(pl: Planner, p: Protocol, steps_only: bool) -> None:
     for j, m in enumerate(p.outcomes.measured()):  # deaths before at_day: the report counts them
         pl.add(f"md_{j}", DEATH, None, 0, m.at_day - 1, first_day)
     for j, o in enumerate(p.outcomes.time_to_event()):
-        pl.add(f"od_{j}", o, None, 1, p.follow_up.max_days, first_day)
+        # all-cause death as an outcome (for the decision) counts from day 0, as it does when
+        # it competes (CONTRACTS §3a)
+        start = 0 if p.concept(o).source == "deaths" else 1
+        pl.add(f"od_{j}", o, None, start, p.follow_up.max_days, first_day)
     if p.outcomes.competing:
         comp = p.concept(p.outcomes.competing[0])
         pl.add("comp_day", comp.name, None, 0 if comp.source == "deaths" else 1,
@@ -311,7 +314,7 @@ def _cohort_frame(con, p: Protocol) -> pd.DataFrame:
     has_comp = bool(p.outcomes.competing)
     tte = p.outcomes.time_to_event()
     for j, o in enumerate(tte):
-        end, reason = _end_sql(p, f"od_{j}", has_comp)
+        end, reason = _end_sql(p, f"od_{j}", has_comp and o not in p.outcomes.competing)
         if o == p.outcomes.primary:
             sel += [f"{end} AS end_day", f"{reason} AS end_reason"]
         sel += [f"{end} AS {q(C.end_day(o))}", f"{reason} AS {q(C.end_reason(o))}"]

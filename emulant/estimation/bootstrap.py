@@ -51,9 +51,18 @@ class BootstrapError(EmulantError):
 # ----------------------------------------------------------------------------- resampling
 
 
-def replicate_freq(n: int, seed: int, r: int) -> np.ndarray:
-    """Multinomial frequency weights of replicate ``r``: one stream per ``(seed, r)``."""
+def replicate_freq(n: int, seed: int, r: int, kind: str = "multinomial") -> np.ndarray:
+    """The person weights of replicate ``r``, from one random stream per ``(seed, r)``.
+
+    ``multinomial``: counts ``Multinomial(n, 1/n, …, 1/n)`` (Efron's bootstrap).
+    ``bayesian``: ``n`` times Dirichlet(1, …, 1) weights, drawn as normalised standard
+    exponentials (Rubin 1981, Ann Stat 9:130), so replicate-based shares read as posterior
+    probabilities under a non-informative prior. Both sum to ``n``.
+    """
     rng = np.random.default_rng([seed, r])
+    if kind == "bayesian":
+        g = rng.standard_exponential(n)
+        return g * (n / g.sum())
     return rng.multinomial(n, np.full(n, 1.0 / n)).astype(float)
 
 
@@ -122,7 +131,7 @@ def _init_worker(state: dict[str, Any]) -> None:
 def _replicate(r: int) -> tuple[int, np.ndarray | None, np.ndarray | None, str | None]:
     """Run replicate ``r`` on the worker's shared state; a failure returns its reason."""
     s = _STATE
-    freq = replicate_freq(s["n"], s["seed"], r)
+    freq = replicate_freq(s["n"], s["seed"], r, s["kind"])
     try:
         with np.errstate(all="ignore"), warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")  # kept to look for non-convergence, never shown
@@ -160,6 +169,7 @@ class BootstrapRun:
     workers: int = 1
     start_method: str = "in-process"
     seconds: float = 0.0
+    kind: str = "multinomial"
 
     @property
     def reasons(self) -> dict[str, int]:
@@ -184,7 +194,10 @@ class BootstrapRun:
                 "failure_reasons": self.reasons, "seed": self.seed,
                 "interval": self.interval, "level": 0.95,
                 "se_scale": {m: "log" for m in RATIO_MEASURES},
-                "resampling": "multinomial frequency weights, numpy default_rng([seed, r])"}
+                "kind": self.kind, "resampling": (
+                    "Dirichlet(1, ..., 1) person weights times n (Bayesian bootstrap)"
+                    if self.kind == "bayesian" else "multinomial frequency weights")
+                + ", numpy default_rng([seed, r])"}
 
 
 def _too_many(failed: int, requested: int) -> bool:
@@ -269,7 +282,7 @@ def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]
     reps = range(requested) if only is None else only
     if reps.start < 0 or reps.stop > requested:
         raise ValueError(f"replicates {reps.start}-{reps.stop - 1} outside 0-{requested - 1}")
-    state = {"estimator": estimator, "n": int(n), "seed": seed,
+    state = {"estimator": estimator, "n": int(n), "seed": seed, "kind": settings.kind,
              "row_index": key_index(rows, ROW_KEY), "curve_index": key_index(curves, CURVE_KEY)}
     results: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     failures: dict[int, str] = {}
@@ -303,7 +316,7 @@ def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]
     method = "in-process" if workers <= 1 else (start_method or default_start_method())
     return BootstrapRun(requested, seed, settings.interval, row_reps, curve_reps, order,
                         {r: failures[r] for r in sorted(failures)}, max(1, workers), method,
-                        time.monotonic() - t0)
+                        time.monotonic() - t0, settings.kind)
 
 
 # ----------------------------------------------------------------------------- intervals

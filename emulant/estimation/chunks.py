@@ -148,4 +148,4 @@ def combine_runs(parts: list[BootstrapRun], protocol, n_rows: int, n_curves: int
                         order, {r: failures[r] for r in sorted(failures)},
                         max([p.workers for p in parts], default=1),
                         parts[0].start_method if parts else "in-process",
-                        sum(p.seconds for p in parts))
+                        sum(p.seconds for p in parts), settings.kind)

@@ -97,7 +97,10 @@ def cox_fit(time, event, X, weight=None, freq=None, tol: float = 1e-10,
     order = np.argsort(t, kind="stable")
     t, w, fr, d, x = t[order], w[order] * fr[order], fr[order], d[order], x[order]
     starts = np.flatnonzero(np.r_[True, t[1:] != t[:-1]])
-    m_tied = np.rint(np.add.reduceat(d * fr, starts)).astype(int)
+    # tied events as duplicated rows; real-valued person weights (the Bayesian bootstrap)
+    # round to whole events, at least one where an event occurs
+    tied = np.add.reduceat(d * fr, starts)
+    m_tied = np.where(tied > 0, np.maximum(np.rint(tied), 1), 0).astype(int)
     beta = np.zeros(p)
     ll, grad, hess = _efron(beta, x, w, d, starts, m_tied)
     for _ in range(max_iter):

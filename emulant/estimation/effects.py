@@ -30,6 +30,7 @@ from emulant.estimation.bootstrap import (
     run_bootstrap,
 )
 from emulant.estimation.chunks import PointEstimate, combine_runs
+from emulant.estimation.decision import DECISION_COLUMNS, decision_table
 from emulant.estimation.evalue import e_value_rows
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
 from emulant.estimation.sample import TREATED, AnalysisSample, SampleError, build_sample
@@ -90,11 +91,13 @@ def replicate_estimates(cohort: pd.DataFrame, protocol: Protocol, design: Any, X
 
 @dataclass
 class EffectsResult:
-    """Estimates (estimates.csv), curves (curves.csv) and the bootstrap's account (bootstrap.json)."""
+    """Estimates (estimates.csv), curves (curves.csv), the bootstrap's account (bootstrap.json)
+    and the decision summary (decision.csv; header only when the protocol states no decision)."""
 
     estimates: pd.DataFrame
     curves: pd.DataFrame
     bootstrap: dict = field(default_factory=dict)
+    decision: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=list(DECISION_COLUMNS)))
 
     @property
     def summary(self) -> pd.DataFrame:
@@ -188,15 +191,18 @@ def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointE
 
 
 def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Protocol) -> EffectsResult:
-    """The point estimate with the intervals of its bootstrap chunks, then the E-values."""
+    """The point estimate with the intervals of its bootstrap chunks, the decision summary, then
+    the E-values."""
     boot = combine_runs(runs, protocol, len(point.rows), len(point.curves))
-    rows, curves = attach_intervals(point.rows, point.curves, boot,
-                                    protocol.analysis.bootstrap.interval)
+    interval = protocol.analysis.bootstrap.interval
+    rows, curves = attach_intervals(point.rows, point.curves, boot, interval)
+    decision = decision_table(rows, boot.row_reps, protocol, interval)
     account = boot.account()
     account["non_estimable"] = non_estimable_account(rows, boot)
     rows = rows + e_value_rows(rows, protocol.outcomes.negative_controls)
     account["point_estimate_warnings"] = list(point.warnings)
-    return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account)
+    return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account,
+                         decision)
 
 
 def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,

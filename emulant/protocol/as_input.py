@@ -84,10 +84,14 @@ def as_input(p: Protocol) -> dict[str, Any]:
             "period_days": a.period_days,
             "censoring_weights": a.censoring_weights,
             "bootstrap": {"replicates": a.bootstrap.replicates, "seed": a.bootstrap.seed,
-                          "interval": a.bootstrap.interval},
+                          "interval": a.bootstrap.interval, "kind": a.bootstrap.kind},
             "balance": {"smd_threshold": a.smd_threshold},
         },
         "report": {"min_cell": p.report.min_cell},
+        "decision": None if p.decision is None else {
+            "horizon_day": p.decision.horizon_day, "loss": dict(p.decision.loss),
+            "strategy_loss": dict(p.decision.strategy_loss)},
+        "subgroups": [{"covariate": g.covariate, "cut": list(g.cut)} for g in p.subgroups],
         "extract_columns": {t: dict(r) for t, r in p.extract_columns.items()},
     }
 

@@ -22,7 +22,15 @@ import re
 from dataclasses import dataclass
 from typing import Any
 
-from emulant.protocol.model import BUILTINS, CONTRASTS, ESTIMANDS, KINDS, METHODS, SUMMARIES
+from emulant.protocol.model import (
+    BOOTSTRAP_KINDS,
+    BUILTINS,
+    CONTRASTS,
+    ESTIMANDS,
+    KINDS,
+    METHODS,
+    SUMMARIES,
+)
 
 #: The value types. ``mapping``: fixed keys (rows below it); ``names``: keys the user names, each
 #: value as its ``*`` row says; ``list``: items as its ``[]`` row says; ``outcome``: a concept name
@@ -218,11 +226,31 @@ KEYS: tuple[Key, ...] = (
     Key("analysis.bootstrap.seed", "integer", "the random seed", 20261201, minimum=0, example=20261201),
     Key("analysis.bootstrap.interval", "choice", "how intervals are formed", "wald", ("wald", "percentile"), example="wald",
         rule="wald: estimate ± 1.96 bootstrap SE (log scale for ratios); percentile: 2.5% and 97.5% quantiles"),
+    Key("analysis.bootstrap.kind", "choice", "how a replicate weights persons", "multinomial", BOOTSTRAP_KINDS, example="bayesian",
+        rule="multinomial: counts Multinomial(n, 1/n, ..., 1/n) (Efron); bayesian: n times Dirichlet(1, ..., 1) weights (Rubin 1981), so shares of replicates are posterior probabilities"),
     Key("analysis.balance", "mapping", "covariate balance", {}),
     Key("analysis.balance.smd_threshold", "number", "an absolute standardised mean difference above this is flagged", 0.1, example=0.1),
     # ------------------------------------------------------------------ report
     Key("report", "mapping", "the report", {}),
     Key("report.min_cell", "integer", "the smallest count shown; counts 1 .. min_cell-1 are shown as '<min_cell'", 5, minimum=1, example=5),
+    # ------------------------------------------------------------------ decision, subgroups
+    Key("decision", "mapping", "the decision summary: expected loss per strategy at one horizon (decision.csv)", None,
+        example={"horizon_day": 1095, "loss": {"hf_admission": 1.0, "death": 2.5}},
+        rule="expected loss of a strategy = sum over the named outcomes of loss x risk at the horizon under it, plus its strategy_loss"),
+    Key("decision.horizon_day", "integer", "the horizon of the decision: one of analysis.horizons_days", REQUIRED, minimum=1, example=1095),
+    Key("decision.loss", "names", "loss per event of each time-to-event outcome (not a negative control) or death", REQUIRED,
+        example={"hf_admission": 1.0, "death": 2.5},
+        rule="each outcome's risk counts its first event by the horizon; death (all causes, counted from day 0) is then estimated as an outcome of its own"),
+    Key("decision.loss.*", "number", "the loss of one event of this outcome (a finite number)", example=1.0),
+    Key("decision.strategy_loss", "names", "the loss of following each strategy itself", {}, example={"kestrel": 0.0}),
+    Key("decision.strategy_loss.*", "number", "the loss of following this arm (a finite number)", example=0.0),
+    Key("subgroups", "list", "covariates whose levels each get the whole analysis rerun within them", [],
+        example=[{"covariate": "sex"}, {"covariate": "age", "cut": [75]}],
+        rule="propensity refitted within each level; estimates.csv rows carry subgroup (sex=F, age<75, age>=75) and the difference between levels of each absolute effect"),
+    Key("subgroups[]", "mapping", "one subgroup: a baseline covariate", example={"covariate": "sex"}),
+    Key("subgroups[].covariate", "text", "the name of a covariate of the covariates list", REQUIRED, example="sex"),
+    Key("subgroups[].cut", "list", "cut points of a continuous covariate (levels x < c1, c1 <= x < c2, ..., x >= ck)", [], example=[75]),
+    Key("subgroups[].cut[]", "number", "one cut point, increasing", example=75),
     # ------------------------------------------------------------------ extract_columns
     Key("extract_columns", "names", "column renames per table: {table: {contract column: column in the file}}", {}, example={"dispensings": {"code": "atc"}}),
     Key("extract_columns.*", "names", "one table's renames", example={"code": "atc"}),

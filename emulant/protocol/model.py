@@ -23,6 +23,7 @@ ESTIMANDS = ("ATE", "ATT", "ATO")
 CONTRASTS = ("intention_to_treat", "per_protocol")
 METHODS = ("unadjusted", "ipw", "standardization", "doubly_robust")
 DEATH = "death"
+BOOTSTRAP_KINDS = ("multinomial", "bayesian")
 
 
 class ProtocolError(EmulantError):
@@ -123,10 +124,11 @@ class Outcomes:
     competing: tuple[str, ...] = ()
     secondary: tuple[str | MeasuredOutcome, ...] = ()
     negative_controls: tuple[str, ...] = ()
+    for_decision: tuple[str, ...] = ()  # estimated only because decision.loss names them (death)
 
     def all(self) -> tuple[str | MeasuredOutcome, ...]:
-        """Primary, secondary, negative controls, in that order."""
-        return (self.primary, *self.secondary, *self.negative_controls)
+        """Primary, secondary, negative controls, outcomes for the decision, in that order."""
+        return (self.primary, *self.secondary, *self.negative_controls, *self.for_decision)
 
     def time_to_event(self) -> tuple[str, ...]:
         return tuple(o for o in self.all() if isinstance(o, str))
@@ -139,6 +141,8 @@ class Outcomes:
             return "primary"
         if name in self.negative_controls:
             return "negative_control"
+        if name in self.for_decision:
+            return "decision"
         return "secondary"
 
 
@@ -181,6 +185,7 @@ class Bootstrap:
     replicates: int = 200
     seed: int = 20261201
     interval: str = "wald"  # wald | percentile
+    kind: str = "multinomial"  # multinomial | bayesian (Dirichlet weights, Rubin 1981)
 
 
 @dataclass(frozen=True)
@@ -194,6 +199,23 @@ class Analysis:
     censoring_weights: bool = False
     bootstrap: Bootstrap = Bootstrap()
     smd_threshold: float = 0.1
+
+
+@dataclass(frozen=True)
+class Decision:
+    """CONTRACTS §5f: expected loss per strategy at one horizon."""
+
+    horizon_day: int
+    loss: tuple[tuple[str, float], ...]  # (time-to-event outcome or 'death', loss per event)
+    strategy_loss: tuple[tuple[str, float], ...] = ()  # (arm, loss of following it)
+
+
+@dataclass(frozen=True)
+class Subgroup:
+    """One analysis per level of a covariate; ``cut`` splits a continuous one (``x < c``)."""
+
+    covariate: str
+    cut: tuple[float, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -223,6 +245,8 @@ class Protocol:
     contrasts: tuple[str, ...] = ("intention_to_treat",)
     analysis: Analysis = Analysis()
     report: ReportSettings = ReportSettings()
+    decision: Decision | None = None
+    subgroups: tuple[Subgroup, ...] = ()
     extract_columns: Mapping[str, Mapping[str, str]] = field(default_factory=dict)
     path: str | None = None  # the protocol file
     text: str = ""  # the file's text, verbatim

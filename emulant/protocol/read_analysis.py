@@ -7,6 +7,7 @@ from typing import Any
 from emulant.protocol.collector import Collector
 from emulant.protocol.keys import known
 from emulant.protocol.model import (
+    BOOTSTRAP_KINDS,
     CONTRASTS,
     ESTIMANDS,
     METHODS,
@@ -66,7 +67,8 @@ def read_analysis(c: Collector, node: Any, follow: FollowUp) -> Analysis:
         c.boolean(a.get("censoring_weights"), "analysis.censoring_weights", False),
         Bootstrap(c.integer(b.get("replicates"), "analysis.bootstrap.replicates", 200, 0) or 0,
                   c.integer(b.get("seed"), "analysis.bootstrap.seed", 20261201, 0) or 0,
-                  c.choice(b.get("interval"), "analysis.bootstrap.interval", ("wald", "percentile"), "wald") or "wald"),
+                  c.choice(b.get("interval"), "analysis.bootstrap.interval", ("wald", "percentile"), "wald") or "wald",
+                  c.choice(b.get("kind"), "analysis.bootstrap.kind", BOOTSTRAP_KINDS, "multinomial") or "multinomial"),
         c.number(bal.get("smd_threshold"), "analysis.balance.smd_threshold", 0.1),
     )
     return analysis

@@ -20,6 +20,7 @@ from emulant.protocol.keys import known, required
 from emulant.protocol.model import Protocol, ProtocolError, Study
 from emulant.protocol.read_analysis import read_analysis, read_estimands, read_report
 from emulant.protocol.read_concepts import read_concepts, read_eligibility
+from emulant.protocol.read_decision import decision_outcomes, read_decision, read_subgroups
 from emulant.protocol.read_outcomes import read_covariates, read_outcomes
 from emulant.protocol.read_strategies import read_follow_up, read_strategies
 
@@ -55,6 +56,9 @@ def read_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | None
 
     analysis = read_analysis(c, top.get("analysis"), follow)
     report = read_report(c, top.get("report"))
+    decision = read_decision(c, top.get("decision"), outcomes, strategies, analysis)
+    outcomes = decision_outcomes(outcomes, decision)
+    subgroups = read_subgroups(c, top.get("subgroups"), covariates)
 
     ec_node = top.get("extract_columns")
     ec = c.mapping(ec_node, "extract_columns", tuple(ec_node) if isinstance(ec_node, dict) else ())
@@ -67,9 +71,11 @@ def read_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | None
 
     if c.problems:
         raise ProtocolError(c.problems, path)
-    return Protocol(study, concepts, elig, strategies, follow, outcomes, covariates, time_varying, estimands, contrasts,
-                    analysis, report, extract_columns, str(path) if path else None, text,
-                    hashlib.sha256(text.encode()).hexdigest() if text else "")
+    return Protocol(study, concepts, elig, strategies, follow, outcomes, covariates, time_varying,
+                    estimands, contrasts,
+                    analysis, report, decision=decision, subgroups=subgroups,
+                    extract_columns=extract_columns, path=str(path) if path else None, text=text,
+                    sha256=hashlib.sha256(text.encode()).hexdigest() if text else "")
 
 
 def parse_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | None = None,

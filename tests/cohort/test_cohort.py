@@ -400,3 +400,20 @@ def test_missing_table_or_column_is_a_clear_error(tmp_path):
     proto = {"concepts": {"hf": {"source": "diagnoses", "codes": ["HF5"], "where": {"ward": "x"}}}}
     with pytest.raises(CohortError, match="diagnoses.*no column 'ward'"):
         run(tmp_path, persons=[1], disp=[(1, T0, "RXA1")], proto=proto)
+
+
+def test_death_for_the_decision_is_all_cause_from_day_zero(tmp_path):
+    # CONTRACTS §5f: the risk of `death` is all-cause mortality, counted whatever happened
+    # before it; a death on day 0 counts at day 0 (§3a), as it does when it competes
+    diag = [(1, "2018-07-01", "HF5")]  # 1: outcome on day 30, then dies on day 61
+    deaths = [(1, "2018-08-01"), (2, T0), (3, "2018-06-11")]  # 2: day 0; 3: day 10
+    proto = {"decision": {"horizon_day": 365, "loss": {"hf": 1, "death": 2}}}
+    res = run(tmp_path, persons=[1, 2, 3, 4], disp=[(i, T0, "RXA1") for i in range(1, 5)],
+              diag=diag, deaths=deaths, proto=proto)
+    got = {i: (row(res, i)["end_day__death"], row(res, i)["end_reason__death"])
+           for i in range(1, 5)}
+    assert got == {1: (61, "outcome"), 2: (0, "outcome"), 3: (10, "outcome"),
+                   4: (1095, "max_follow_up")}
+    # the primary outcome keeps death as its competing event
+    assert (row(res, 1).end_day, row(res, 1).end_reason) == (30, "outcome")
+    assert (row(res, 3).end_day, row(res, 3).end_reason) == (10, "competing")

@@ -50,8 +50,8 @@ def test_failed_replicates_are_counted(monkeypatch):
     real = B.replicate_freq
 
     def no_treated_in(bad):
-        def freq(n, seed, r):
-            f = real(n, seed, r)
+        def freq(n, seed, r, kind="multinomial"):
+            f = real(n, seed, r, kind)
             if r in bad:
                 f[a == 1] = 0  # an arm without anyone: the replicate must fail
             return f

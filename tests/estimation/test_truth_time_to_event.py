@@ -1,7 +1,8 @@
 """Time-to-event estimators against the synthetic cohort's known truth.
 
 The truth (synthetic_cohort, truth.json) is each eligible person's exact cumulative incidence of
-the outcome under both strategies, with death competing and no censoring, averaged over the
+the outcome under both strategies, with death competing and no censoring (all-cause death,
+for the decision summary, with nothing competing), averaged over the
 eligible (ATE) or the treated arm's initiators (ATT). Adjusted risk differences must lie within
 3 bootstrap standard errors of it at every horizon; the confounded crude difference must not.
 The negative-control outcome has a true difference of exactly 0 (common practice: a negative
@@ -33,7 +34,8 @@ def run(tmp_path_factory):
     protocol = dataclasses.replace(protocol, outcomes=outcomes,
                                    analysis=dataclasses.replace(protocol.analysis, bootstrap=boot))
     cohort = build_cohort(open_extract(out, protocol), protocol).cohort
-    return truth, protocol, estimate_effects(cohort, protocol, workers=2, progress=False).estimates
+    res = estimate_effects(cohort, protocol, workers=2, progress=False)
+    return truth, protocol, res.estimates, res.decision
 
 
 def _rd(est, outcome):
@@ -41,7 +43,7 @@ def _rd(est, outcome):
 
 
 def test_adjusted_risk_differences_recover_the_truth(run):
-    truth, protocol, est = run
+    truth, protocol, est, _ = run
     outcome = protocol.outcomes.primary
     rows = _rd(est, outcome)
     assert len(rows) == len(protocol.analysis.horizons_days) * (1 + 2 * len(protocol.analysis.methods))
@@ -51,7 +53,7 @@ def test_adjusted_risk_differences_recover_the_truth(run):
 
 
 def test_crude_risk_difference_is_visibly_biased(run):
-    truth, protocol, est = run
+    truth, protocol, est, _ = run
     outcome = protocol.outcomes.primary
     rows = _rd(est, outcome)
     for r in rows[rows.method == "unadjusted"].itertuples():
@@ -60,7 +62,7 @@ def test_crude_risk_difference_is_visibly_biased(run):
 
 
 def test_negative_control_has_no_effect_after_adjustment(run):
-    truth, protocol, est = run
+    truth, protocol, est, _ = run
     (control,) = protocol.outcomes.negative_controls
     rows = _rd(est, control)
     for r in rows[rows.method != "unadjusted"].itertuples():
@@ -69,7 +71,7 @@ def test_negative_control_has_no_effect_after_adjustment(run):
 
 
 def test_hazard_ratio_and_e_values_are_reported(run):
-    _, protocol, est = run
+    _, protocol, est, _ = run
     hr = est[(est.measure == "hazard_ratio") & (est.outcome == protocol.outcomes.primary)]
     assert set(hr.method) >= {"unadjusted", "ipw"} and (hr.estimate > 0).all()
     ev = est[est.measure == "e_value"]
@@ -77,3 +79,25 @@ def test_hazard_ratio_and_e_values_are_reported(run):
                    & ~est.outcome.isin(protocol.outcomes.negative_controls)]
     assert len(ev) == len(adjusted) and not ev.method.eq("unadjusted").any()
     assert (ev.estimate >= 1).all()
+
+
+def test_all_cause_death_and_the_expected_loss_recover_the_truth(run):
+    # expected loss (CONTRACTS §5f) = sum of loss x true risk at the decision horizon; its
+    # Wald interval gives the SE: (ci_high - ci_low) / (2 x 1.96)
+    truth, protocol, est, decision = run
+    d = protocol.decision
+    h = str(d.horizon_day)
+    loss, t, c = dict(d.loss), protocol.strategies.treated, protocol.strategies.comparator
+    death = _rd(est, "death")
+    assert len(death) == len(protocol.analysis.horizons_days) * (1 + 2 * len(protocol.analysis.methods))
+    for r in death[death.method != "unadjusted"].itertuples():
+        assert truth["time_to_event"]["death"][r.estimand]["risk_difference"][str(int(r.horizon_day))] == 0
+        assert r.ci_low <= 0 <= r.ci_high, r
+    rows = decision[(decision.measure == "expected_loss_difference") & decision.estimand.notna()]
+    assert len(rows) == 2 * len(protocol.analysis.methods)
+    for r in rows.itertuples():
+        risk = {a: {o: truth["time_to_event"][o][r.estimand]["risk"][a][h] for o in loss}
+                for a in (t, c)}
+        target = sum(loss[o] * (risk[t][o] - risk[c][o]) for o in loss)
+        se = (r.ci_high - r.ci_low) / (2 * 1.959963984540054)
+        assert abs(r.estimate - target) < 3 * se, (r, target)

@@ -206,7 +206,8 @@ def test_defaults_filled(tmp_path):
     assert a["strategies"]["same_day"] == "exclude"
     assert a["analysis"]["horizons_days"] == [365, 730, 1095]
     assert a["analysis"]["methods"] == ["ipw", "standardization", "doubly_robust"]
-    assert a["analysis"]["bootstrap"] == {"replicates": 200, "seed": 20261201, "interval": "wald"}
+    assert a["analysis"]["bootstrap"] == {"replicates": 200, "seed": 20261201, "interval": "wald",
+                                         "kind": "multinomial"}
     assert a["analysis"]["weights"] == {"stabilize": True, "truncate": None}
     assert a["analysis"]["propensity"] == {"model": "logistic", "continuous": "spline"}
     assert a["analysis"]["period_days"] == 30 and a["analysis"]["smd_threshold"] == 0.1

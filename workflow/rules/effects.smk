@@ -44,6 +44,7 @@ rule estimate_effects:
         estimates=result("estimates.csv"),
         curves=result("curves.csv"),
         bootstrap=result("bootstrap.json"),
+        decision=result("decision.csv"),
     log:
         logfile("estimate_effects"),
     script:

@@ -14,6 +14,7 @@ rule render_report:
         estimates=ancient(result("estimates.csv")),
         curves=ancient(result("curves.csv")),
         bootstrap=ancient(result("bootstrap.json")),
+        decision=ancient(result("decision.csv")),
         protocol=PROTOCOL_FILES,
     output:
         report=result("report.html"),
