@@ -117,6 +117,11 @@ def _truth(protocol: Protocol, cohort: rules.Cohort, x: dict, persons: int, seed
     tte = {name: time_to_event_truth(xe, arm, OUTCOME_PARAMS[name],
                                      protocol.analysis.horizons_days, st.treated, st.comparator)
            for name in protocol.outcomes.time_to_event()}
+    subgroups = {label: {name: time_to_event_truth(xe, arm, OUTCOME_PARAMS[name],
+                                                   protocol.analysis.horizons_days, st.treated,
+                                                   st.comparator, among)
+                         for name in protocol.outcomes.time_to_event()}
+                 for label, among in _subgroup_levels(protocol, xe)}
     measured = {}
     for m in protocol.outcomes.measured():
         if m.measure != "marker" or m.change_from_baseline:
@@ -128,9 +133,12 @@ def _truth(protocol: Protocol, cohort: rules.Cohort, x: dict, persons: int, seed
         "seed": int(seed), "persons": int(persons), "protocol_study_id": protocol.study.id,
         "eligible": {"n": int(el.sum()), "by_arm": by_arm},
         "attrition": [{"step": s, "remaining": r} for s, r in cohort.attrition],
-        "time_to_event": tte, "measured": measured,
+        "time_to_event": tte, "measured": measured, "subgroups": subgroups,
         "dgp": {"hazard_ratio": {k: v["hazard_ratio"][st.treated] / v["hazard_ratio"][st.comparator]
                                  for k, v in OUTCOME_PARAMS.items()},
+                "hazard_ratio_men": {k: v["hazard_ratio_male"][st.treated]
+                                     / v["hazard_ratio_male"][st.comparator]
+                                     for k, v in OUTCOME_PARAMS.items() if "hazard_ratio_male" in v},
                 "marker_effect": P.MARKER_OUTCOME["effect"][st.treated]
                 - P.MARKER_OUTCOME["effect"][st.comparator]},
         "description": (
@@ -138,10 +146,31 @@ def _truth(protocol: Protocol, cohort: rules.Cohort, x: dict, persons: int, seed
             "(treated) or plover. True values are exact per-person expectations under each "
             "strategy (constant cause-specific hazards, death competing, no censoring) "
             "averaged over the eligible cohort; ATT averages over kestrel initiators. "
-            "Conditional hazard ratio kestrel/plover: 0.7 for hf_admission, 1 for lens_opacity "
+            "Conditional hazard ratio kestrel/plover: 0.6 for hf_admission in women and 0.8 in "
+            "men (truths by subgroup under 'subgroups'), 1 for lens_opacity "
             "(negative control), 1 for death (all-cause, no competing event); marker near "
             "day 365: -4.0 under kestrel."),
     })
+
+
+def _subgroup_levels(protocol: Protocol, x: dict) -> list[tuple[str, np.ndarray]]:
+    """The protocol's subgroup levels among the eligible, labelled as emulant labels them
+    (``sex=F``, ``age<75``, ``age>=75``); the demo's truths cover ``sex`` and ``age``."""
+    covs = {c.name: c for c in protocol.covariates}
+    out = []
+    for s in protocol.subgroups:
+        builtin = covs[s.covariate].builtin if s.covariate in covs else None
+        if builtin == "sex" and not s.cut:
+            out += [(f"{s.covariate}=F", x["male"] == 0), (f"{s.covariate}=M", x["male"] == 1)]
+        elif builtin == "age" and s.cut:
+            edges = [-np.inf, *s.cut, np.inf]
+            for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+                label = (f"{s.covariate}<{hi:g}" if lo == -np.inf else f"{s.covariate}>={lo:g}"
+                         if hi == np.inf else f"{lo:g}<={s.covariate}<{hi:g}")
+                out.append((label, (x["age"] >= lo) & (x["age"] < hi)))
+        else:
+            raise SynthError(f"subgroup {s.covariate!r}: the demo's truths cover sex and age (cut)")
+    return out
 
 
 def _rounded(x):

@@ -105,7 +105,9 @@ TREATMENT = {"intercept": -0.45, "age10": 0.35, "male": 0.1, "cv": 0.9, "kidney"
 # n_drugs (distinct codes), region.
 PRIMARY = {"rate": 0.035, "age10": 0.45, "male": 0.25, "cv": 0.7, "kidney": 0.4, "lab10": 0.25,
            "lab_missing": 0.2, "drugs": 0.12, "region": (0.0, 0.15, -0.1, 0.25, -0.2),
-           "hazard_ratio": {"kestrel": 0.7, "plover": 1.0}}
+           "hazard_ratio": {"kestrel": 0.6, "plover": 1.0},
+           # effect modification by sex (the subgroup analyses' truth): men's hazard ratio
+           "hazard_ratio_male": {"kestrel": 0.8, "plover": 1.0}}
 NEGATIVE_CONTROL = {"rate": 0.02, "age10": 0.6, "male": -0.2, "cv": 0.5, "kidney": 0.5,
                     "lab10": 0.4, "lab_missing": 0.3, "drugs": 0.15,
                     "region": (0.0, 0.1, 0.0, 0.2, -0.1),

@@ -30,7 +30,11 @@ def log_rate(par: dict, x: dict[str, np.ndarray], arm: np.ndarray | str) -> np.n
     lab = x["lab"]
     missing = np.isnan(lab)
     hr = np.log(np.asarray([par["hazard_ratio"][a] for a in P.ARMS]))
-    arm_term = hr[P.ARMS.index(arm)] if isinstance(arm, str) else hr[np.asarray(arm)]
+    arm_i = P.ARMS.index(arm) if isinstance(arm, str) else np.asarray(arm)
+    arm_term = hr[arm_i]
+    if "hazard_ratio_male" in par:  # the arm's effect differs for men
+        hr_m = np.log(np.asarray([par["hazard_ratio_male"][a] for a in P.ARMS]))
+        arm_term = np.where(x["male"] == 1, hr_m[arm_i], arm_term)
     return (np.log(par["rate"] / DAYS_PER_YEAR) + par["age10"] * (x["age"] - P.AGE_MEAN) / 10
             + par["male"] * x["male"] + par["cv"] * x["cv"] + par["kidney"] * x["kidney"]
             + par["lab10"] * np.where(missing, 0.0, (lab - P.LAB_MEAN) / 10)
@@ -70,10 +74,12 @@ def _effects(values: dict[str, np.ndarray], treated: str, comparator: str) -> tu
 
 
 def time_to_event_truth(x: dict[str, np.ndarray], arm: np.ndarray, par: dict,
-                        horizons: tuple[int, ...], treated: str, comparator: str) -> dict:
+                        horizons: tuple[int, ...], treated: str, comparator: str,
+                        among: np.ndarray | None = None) -> dict:
     """True risks, risk differences and ratios by horizon for ATE and ATT.
 
-    ``x`` holds the eligible persons' measured covariates and ``arm`` their arm index.
+    ``x`` holds the eligible persons' measured covariates and ``arm`` their arm index;
+    ``among`` (a mask) restricts both estimands to a subgroup.
     """
     risks = {}
     for a in P.ARMS:
@@ -81,7 +87,8 @@ def time_to_event_truth(x: dict[str, np.ndarray], arm: np.ndarray, par: dict,
         # all-cause death as the outcome has no competing event
         hd = np.zeros_like(h) if par is P.DEATH else np.exp(log_rate(P.DEATH, x, a))
         risks[a] = np.stack([cumulative_incidence(h, hd, float(t)) for t in horizons])
-    groups = {"ATE": np.ones(len(arm), bool), "ATT": arm == P.ARMS.index(treated)}
+    inside = np.ones(len(arm), bool) if among is None else np.asarray(among, bool)
+    groups = {"ATE": inside, "ATT": inside & (arm == P.ARMS.index(treated))}
     out = {}
     for estimand, g in groups.items():
         mean = {a: risks[a][:, g].mean(axis=1) for a in P.ARMS}

@@ -54,12 +54,13 @@ def _study(wd: Path) -> str:
 def test_first_run_writes_every_result(workdir):
     res = workdir / "results" / _study(workdir)
     for name in ("extract_check.json", "attrition.csv", "cohort.parquet", "weights.parquet", "positivity.json",
-                 "balance.csv", "estimates.csv", "curves.csv", "bootstrap.json", "manifest.json", "report.html",
-                 "archive.json"):
+                 "balance.csv", "estimates.csv", "curves.csv", "bootstrap.json", "decision.csv", "manifest.json",
+                 "report.html", "archive.json"):
         assert (res / name).is_file(), name
     est = pd.read_csv(res / "estimates.csv")
     assert list(est.columns) == ["outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
-                                 "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events", "note"]
+                                 "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events", "note",
+                                 "subgroup"]
     assert {"ATE", "ATT"} <= set(est.estimand.dropna())
     archived = json.loads((res / "archive.json").read_text())
     assert Path(workdir / archived["report"]).is_file() or Path(archived["report"]).is_file()

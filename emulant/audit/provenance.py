@@ -28,10 +28,11 @@ PACKAGES = ("emulant", "snakemake", "duckdb", "pandas", "pyarrow", "numpy", "sci
             "lifelines", "scikit-learn", "jinja2", "matplotlib", "pydantic", "pyyaml")
 RESULT_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weights.parquet",
                 "positivity.json", "balance.csv", "estimates.csv", "curves.csv", "bootstrap.json",
-                "periods.parquet")
+                "periods.parquet", "decision.csv")
 ARCHIVED = ("report.html", "manifest.json", "estimates.csv", "curves.csv", "attrition.csv",
-            "balance.csv", "positivity.json", "bootstrap.json", "extract_check.json")
-ESTIMATE_KEY = ["outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm", "comparator"]
+            "balance.csv", "positivity.json", "bootstrap.json", "extract_check.json", "decision.csv")
+ESTIMATE_KEY = ["outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm", "comparator",
+                "subgroup"]
 
 
 def package_versions() -> dict[str, str]:
@@ -95,7 +96,8 @@ def build_manifest(protocol: Protocol, results_dir: str | Path, reports_dir: str
             inputs.append({"table": f"codelist:{c.name}", "path": str(f), "sha256": sha256_file(f), "rows": len(c.codes)})
     produced = {name: results / name for name in RESULT_FILES if (results / name).is_file()}
     if kind == "design":
-        produced = {k: v for k, v in produced.items() if k not in ("estimates.csv", "curves.csv", "bootstrap.json")}
+        produced = {k: v for k, v in produced.items()
+                    if k not in ("estimates.csv", "curves.csv", "bootstrap.json", "decision.csv")}
     mtimes = {name: p.stat().st_mtime for name, p in produced.items()}
     ledger = [e for e in read_ledger(reports_dir) if e.get("kind", "analysis") == kind]
     b = protocol.analysis.bootstrap
@@ -154,6 +156,9 @@ def compare_with_previous(reports_dir: str | Path, manifest: dict[str, Any],
     if manifest.get("kind") != "design" and (folder / "estimates.csv").is_file() and (results / "estimates.csv").is_file():
         e0 = pd.read_csv(folder / "estimates.csv", keep_default_na=False, na_values=[""])
         e1 = pd.read_csv(results / "estimates.csv", keep_default_na=False, na_values=[""])
+        for frame in (e0, e1):  # a run before subgroups existed: every row is the whole cohort's
+            if "subgroup" not in frame.columns:
+                frame["subgroup"] = pd.NA
         key = [k for k in ESTIMATE_KEY if k in e0.columns and k in e1.columns]
         join = [f"_key_{k}" for k in key]
         for frame in (e0, e1):  # join on text so that empty cells and numbers compare alike

@@ -35,7 +35,7 @@ from emulant.errors import EmulantError, NonConvergenceWarning, ReplicateFailure
 from emulant.progress import Progress
 
 ROW_KEY = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
-           "comparator")
+           "comparator", "subgroup")
 CURVE_KEY = ("outcome", "contrast", "estimand", "method", "arm", "day")  # outcome when present
 RATIO_MEASURES = ("risk_ratio", "hazard_ratio")
 MAX_FAILED_SHARE = 0.05

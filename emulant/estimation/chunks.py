@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -39,6 +39,7 @@ class PointEstimate:
     rows: list[dict]
     curves: list[dict]
     warnings: list[str]
+    subgroups: list[dict] = field(default_factory=list)  # each level: estimable, reason
 
 
 def default_chunks(replicates: int) -> int:
@@ -80,12 +81,13 @@ def point_to_json(point: PointEstimate) -> str:
     """JSON that reads back to the same values (Python writes floats exactly; NaN as NaN)."""
     return json.dumps({"rows": [{k: _plain(v) for k, v in r.items()} for r in point.rows],
                        "curves": [{k: _plain(v) for k, v in c.items()} for c in point.curves],
-                       "warnings": list(point.warnings)}) + "\n"
+                       "warnings": list(point.warnings),
+                       "subgroups": list(point.subgroups)}) + "\n"
 
 
 def read_point(path: str | Path) -> PointEstimate:
     d = json.loads(Path(path).read_text(encoding="utf-8"))
-    return PointEstimate(d["rows"], d["curves"], d["warnings"])
+    return PointEstimate(d["rows"], d["curves"], d["warnings"], d.get("subgroups", []))
 
 
 def write_run(fh, run: BootstrapRun) -> None:

@@ -100,8 +100,10 @@ def decision_table(rows: list[dict], row_reps: np.ndarray, protocol: Protocol,
     bootstrap replicates aligned with them (replicates x rows)."""
     if protocol.decision is None:
         return pd.DataFrame(columns=list(DECISION_COLUMNS))
-    point = np.array([np.nan if r.get("estimate") is None else float(r["estimate"]) for r in rows])
     reps = np.asarray(row_reps, dtype=float).reshape(-1, len(rows))
+    whole = [i for i, r in enumerate(rows) if not r.get("subgroup")]  # the whole cohort's rows
+    rows, reps = [rows[i] for i in whole], reps[:, whole]
+    point = np.array([np.nan if r.get("estimate") is None else float(r["estimate"]) for r in rows])
     losses = expected_losses(point, reps, rows, protocol)
     arms = protocol.strategies.arm_names
     treated, comparator = protocol.strategies.treated, protocol.strategies.comparator

@@ -11,8 +11,9 @@ from __future__ import annotations
 
 import logging
 import math
+import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import partial
 from typing import Any
 
@@ -21,6 +22,7 @@ import pandas as pd
 
 from emulant import columns
 from emulant.cohort.covariates import covariate_kinds
+from emulant.errors import EmulantError, NonConvergenceWarning, ReplicateFailure
 from emulant.estimation.bootstrap import (
     ROW_KEY,
     BootstrapRun,
@@ -33,7 +35,14 @@ from emulant.estimation.chunks import PointEstimate, combine_runs
 from emulant.estimation.decision import DECISION_COLUMNS, decision_table
 from emulant.estimation.evalue import e_value_rows
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
-from emulant.estimation.sample import TREATED, AnalysisSample, SampleError, build_sample
+from emulant.estimation.sample import (
+    TREATED,
+    AnalysisSample,
+    SampleError,
+    build_sample,
+    treatment_indicator,
+)
+from emulant.estimation.subgroups import LevelAnalysis, level_differences, prepare_levels
 from emulant.estimation.tte import time_to_event_estimates
 from emulant.models.design import DesignError, build_design
 from emulant.models.weights import WeightsError
@@ -43,7 +52,8 @@ from emulant.protocol import MeasuredOutcome, Protocol
 log = logging.getLogger(__name__)
 
 ESTIMATE_COLUMNS = ("outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm",
-                    "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events", "note")
+                    "comparator", "estimate", "ci_low", "ci_high", "se", "n", "events", "note",
+                    "subgroup")  # subgroup: last, empty for the whole cohort (CONTRACTS §5f)
 CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low", "ci_high",
                  "at_risk")
 EffectsError = EstimationError  # the same class under the module's name
@@ -74,16 +84,45 @@ def estimate_sample(sample: AnalysisSample, progress: Progress | None = None
 
 
 def replicate_estimates(cohort: pd.DataFrame, protocol: Protocol, design: Any, X: np.ndarray,
-                        freq: np.ndarray) -> tuple[list[dict], list[dict]]:
-    """One bootstrap replicate: the whole analysis refitted with frequency weights ``freq``.
+                        freq: np.ndarray, levels: tuple[LevelAnalysis, ...] = ()
+                        ) -> tuple[list[dict], list[dict]]:
+    """One bootstrap replicate: the whole analysis refitted with frequency weights ``freq``,
+    then within each subgroup level of ``levels``.
 
     A sample whose models warn (e.g. a propensity model that did not converge) fails the
-    replicate with that warning as its reason.
+    replicate with that warning as its reason; a level that fails leaves only its own values
+    missing in this replicate.
     """
     sample = build_sample(cohort, protocol, design, X, freq)
     if sample.warnings:
         raise SampleError(sample.warnings[0])
-    return estimate_sample(sample)
+    rows, curves = estimate_sample(sample)
+    for lv in levels:
+        rows += level_estimates(lv, protocol, freq, point=False)[0]
+    return rows, curves
+
+
+def level_estimates(lv: LevelAnalysis, protocol: Protocol, freq: np.ndarray,
+                    point: bool) -> tuple[list[dict], str | None]:
+    """One subgroup level's rows (no curves), tagged with its ``subgroup``, or ``([], reason)``.
+
+    For the point estimate only the failures a user's data can cause are caught; in a
+    replicate any failure is, as for a whole replicate.
+    """
+    caught_types = (EmulantError, ReplicateFailure) if point else (Exception,)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            sample = build_sample(lv.cohort, protocol, lv.design, lv.X, freq[lv.level.rows])
+            if sample.warnings:
+                return [], sample.warnings[0]
+            rows, _ = estimate_sample(sample)
+        except caught_types as exc:
+            return [], getattr(exc, "reason", None) or f"{type(exc).__name__}: {exc}"
+    failed = [w for w in caught if issubclass(w.category, NonConvergenceWarning)]
+    if failed:
+        return [], str(failed[0].message)
+    return [{**r, "subgroup": lv.level.label} for r in rows], None
 
 
 # ----------------------------------------------------------------------------- results
@@ -150,8 +189,10 @@ def check_cohort(cohort: pd.DataFrame, protocol: Protocol) -> None:
         raise EstimationError("cohort: no rows")
 
 
-def _prepare(cohort: pd.DataFrame, protocol: Protocol) -> tuple[Any, np.ndarray]:
-    """The design (levels, knots) learned once on the whole cohort, and its matrix."""
+def _prepare(cohort: pd.DataFrame, protocol: Protocol
+             ) -> tuple[Any, np.ndarray, list[LevelAnalysis], list[dict]]:
+    """The design (levels, knots) learned once on the whole cohort, its matrix, and the
+    subgroup levels with their account (:mod:`.subgroups`)."""
     check_cohort(cohort, protocol)
     try:
         kinds = covariate_kinds(protocol, cohort)
@@ -159,24 +200,38 @@ def _prepare(cohort: pd.DataFrame, protocol: Protocol) -> tuple[Any, np.ndarray]
                               protocol.analysis.propensity.continuous)
     except DesignError as exc:
         raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
-    return design, np.asarray(design.transform(cohort), dtype=float)
+    levels, account = prepare_levels(cohort, protocol, kinds, treatment_indicator(cohort))
+    return design, np.asarray(design.transform(cohort), dtype=float), levels, account
 
 
 def point_estimate(cohort: pd.DataFrame, protocol: Protocol) -> PointEstimate:
-    """Every outcome, estimand and method with unit frequency weights (no intervals yet)."""
-    steps = Progress("point estimate (sample, then each outcome)",
-                     1 + len(protocol.outcomes.all()))
-    design, X = _prepare(cohort, protocol)
+    """Every outcome, estimand and method with unit frequency weights (no intervals yet), for
+    the whole cohort and each subgroup level."""
+    design, X, levels, account = _prepare(cohort, protocol)
+    steps = Progress("point estimate (sample, each outcome, each subgroup level)",
+                     1 + len(protocol.outcomes.all()) + len(levels))
     try:
         point = build_sample(cohort, protocol, design, X)
         steps.step()
         rows, curves = estimate_sample(point, steps)
     except (SampleError, WeightsError) as exc:
         raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
+    ones = np.ones(len(cohort))
+    reasons = {}
+    for lv in levels:
+        level_rows, why = level_estimates(lv, protocol, ones, point=True)
+        rows += level_rows
+        if why is not None:
+            reasons[lv.level.label] = why
+            log.warning("subgroup %s is not estimable: %s", lv.level.label, why)
+        steps.step()
     steps.close()
+    for a in account:
+        if a["subgroup"] in reasons:
+            a.update(estimable=False, reason=reasons[a["subgroup"]])
     for w in point.warnings:
         log.warning("point estimate: %s", w)
-    return PointEstimate(rows, curves, list(point.warnings))
+    return PointEstimate(rows, curves, list(point.warnings), account)
 
 
 def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointEstimate,
@@ -184,8 +239,10 @@ def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointE
                          progress: bool | Callable | None = None,
                          start_method: str | None = None) -> BootstrapRun:
     """Replicates ``only`` (all when None) of the protocol's bootstrap, aligned to ``point``."""
-    design, X = _prepare(cohort, protocol)
-    estimator = partial(replicate_estimates, cohort, protocol, design, X)
+    design, X, levels, _ = _prepare(cohort, protocol)
+    estimable = {a["subgroup"] for a in point.subgroups if a["estimable"]}
+    levels = tuple(lv for lv in levels if lv.level.label in estimable)
+    estimator = partial(replicate_estimates, cohort, protocol, design, X, levels=levels)
     return run_bootstrap(estimator, len(cohort), protocol, point.rows, point.curves,
                          workers=workers, progress=progress, start_method=start_method, only=only)
 
@@ -194,13 +251,18 @@ def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Pro
     """The point estimate with the intervals of its bootstrap chunks, the decision summary, then
     the E-values."""
     boot = combine_runs(runs, protocol, len(point.rows), len(point.curves))
+    extra_rows, extra_reps = level_differences(point.rows, boot.row_reps, point.subgroups)
+    boot = replace(boot, row_reps=np.hstack([boot.row_reps, extra_reps]))
     interval = protocol.analysis.bootstrap.interval
-    rows, curves = attach_intervals(point.rows, point.curves, boot, interval)
+    rows, curves = attach_intervals(point.rows + extra_rows, point.curves, boot, interval)
     decision = decision_table(rows, boot.row_reps, protocol, interval)
     account = boot.account()
     account["non_estimable"] = non_estimable_account(rows, boot)
     rows = rows + e_value_rows(rows, protocol.outcomes.negative_controls)
     account["point_estimate_warnings"] = list(point.warnings)
+    if point.subgroups:
+        account["subgroups"] = [{k: a[k] for k in ("subgroup", "estimable", "reason")}
+                                for a in point.subgroups]
     return EffectsResult(_frame(rows, ESTIMATE_COLUMNS), _frame(curves, CURVE_COLUMNS), account,
                          decision)
 

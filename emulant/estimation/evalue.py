@@ -105,7 +105,8 @@ def e_value_rows(estimate_rows: list[dict], negative_controls=()) -> list[dict]:
             est, lo, hi = (hr_to_rr(x, common) if not _missing(x) else x for x in (est, lo, hi))
         e_ci = e_value_ci(est, lo, hi)
         row = {k: r.get(k) for k in ("outcome", "contrast", "estimand", "method", "horizon_day",
-                                     "arm", "comparator", "n", "events")}
+                                     "arm", "comparator", "n", "events", "subgroup")
+               if k != "subgroup" or r.get(k)}
         row.update(measure="e_value", estimate=e_value(est),
                    ci_low=None if math.isnan(e_ci) else e_ci, ci_high=None, se=None)
         if r.get("note") and _missing(r.get("estimate")):

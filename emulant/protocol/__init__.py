@@ -7,9 +7,10 @@ from emulant.protocol.model import (
     MeasuredOutcome,
     Protocol,
     ProtocolError,
+    Subgroup,
     outcome_name,
 )
 from emulant.protocol.reader import load_protocol, parse_protocol
 
-__all__ = ["Concept", "Covariate", "MeasuredOutcome", "Protocol", "ProtocolError", "load_protocol",
-           "outcome_name", "parse_protocol"]
+__all__ = ["Concept", "Covariate", "MeasuredOutcome", "Protocol", "ProtocolError", "Subgroup",
+           "load_protocol", "outcome_name", "parse_protocol"]

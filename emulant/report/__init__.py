@@ -39,6 +39,10 @@ def render_html(ctx: dict) -> str:
     curves = ctx.get("curves") or []
     for c in curves:
         c["svg"] = Markup(c["svg"])
+    if ctx.get("decision") and ctx["decision"].get("svg"):
+        ctx["decision"]["svg"] = Markup(ctx["decision"]["svg"])
+    for panel in (ctx.get("subgroups") or {}).get("panels", []):
+        panel["svg"] = Markup(panel["svg"])
     return env.get_template("report.html.j2").render(ctx=ctx, css=css, svg=svg)
 
 

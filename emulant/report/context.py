@@ -12,13 +12,14 @@ from typing import Any
 
 from emulant.protocol import Protocol
 from emulant.protocol.as_input import as_input_yaml
+from emulant.report import decision, figures, fmt, narrative, results, tables, target
 from emulant.report import disclosure as dc
-from emulant.report import figures, fmt, narrative, results, tables, target
 from emulant.report.load import read_results
 
 SECTIONS = (
     ("question", "The question"),
     ("warnings", "Warnings"),
+    ("decision", "Decision summary"),
     ("disclosure", "How counts are shown"),
     ("target-trial", "Target trial and emulation"),
     ("provenance", "Data provenance"),
@@ -26,6 +27,7 @@ SECTIONS = (
     ("baseline", "Baseline characteristics"),
     ("positivity", "Propensity overlap and weights"),
     ("results", "Results"),
+    ("subgroups", "Effects by subgroup"),
     ("assumptions", "Assumptions"),
     ("target-checklist", "TARGET checklist"),
     ("since-previous", "Since the previous run"),
@@ -33,7 +35,7 @@ SECTIONS = (
     ("protocol", "Appendix: the protocol as parsed"),
     ("codelists", "Appendix: code lists"),
 )
-DESIGN_OMITS = {"results", "since-previous"}
+DESIGN_OMITS = {"results", "since-previous", "decision", "subgroups"}
 
 
 def comparison_context(cmp: dict, protocol: Protocol) -> dict:
@@ -146,10 +148,14 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         ctx["censoring"] = results.censoring(raw["cohort"], p)
         ctx["measured_missing"] = results.measured_missing(raw["cohort"], p)
         ctx["bootstrap"] = results.bootstrap(raw["bootstrap"]) if raw["bootstrap"] else None
+        ctx["decision"] = decision.decision_context(raw["decision"], p)
+        ctx["subgroups"] = decision.subgroup_context(
+            raw["subgroup_estimates"], est, (raw["bootstrap"] or {}).get("subgroups"), p)
         events = results.events_by_arm(raw["cohort"], est, p)
         ctx["comparison"] = comparison_context(comparison, p) if comparison else None
     else:
         ctx.update(estimates=None, negative_controls=[], curves=None, censoring=None,
+                   decision=None, subgroups=None,
                    measured_missing=[],
                    bootstrap=None, comparison=None)
 
@@ -175,5 +181,6 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         t["title"] = titles.get(t["section"], "")
     ctx["sections"] = [{"id": sid, "title": t} for sid, t in SECTIONS
                        if not (design and sid in DESIGN_OMITS)
-                       and not (sid == "since-previous" and not ctx["comparison"])]
+                       and not (sid == "since-previous" and not ctx["comparison"])
+                       and not (sid in ("decision", "subgroups") and not ctx.get(sid))]
     return ctx

@@ -14,7 +14,7 @@ from emulant.protocol import Protocol
 
 DESIGN_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weights.parquet",
                 "balance.csv", "positivity.json")
-OUTCOME_FILES = ("estimates.csv", "curves.csv", "bootstrap.json")
+OUTCOME_FILES = ("estimates.csv", "curves.csv", "bootstrap.json", "decision.csv")
 
 
 class ReportError(EmulantError):
@@ -100,11 +100,22 @@ def read_results(results_dir: str | Path, protocol: Protocol, design: bool) -> d
     out["positivity"] = _json(p) if p.is_file() else None
     if design:
         out["estimates"] = out["curves"] = out["bootstrap"] = None
+        out["subgroup_estimates"] = out["decision"] = None
         return out
     p = d / "estimates.csv"
-    out["estimates"] = (_csv(p, ("outcome", "estimand", "method", "measure", "horizon_day", "arm",
-                                 "comparator", "estimate", "ci_low", "ci_high", "n", "events"))
-                        if p.is_file() else None)
+    est = (_csv(p, ("outcome", "estimand", "method", "measure", "horizon_day", "arm",
+                    "comparator", "estimate", "ci_low", "ci_high", "n", "events"))
+           if p.is_file() else None)
+    out["subgroup_estimates"] = None
+    if est is not None and "subgroup" in est.columns:  # whole-cohort rows have it empty (§5f)
+        sub = est["subgroup"].notna()
+        out["subgroup_estimates"] = est[sub].reset_index(drop=True) if sub.any() else None
+        est = est[~sub].drop(columns="subgroup").reset_index(drop=True)
+    out["estimates"] = est
+    p = d / "decision.csv"
+    out["decision"] = (_csv(p, ("contrast", "estimand", "method", "measure", "arm", "comparator",
+                                "outcome", "estimate", "ci_low", "ci_high"))
+                       if p.is_file() else None)
     p = d / "curves.csv"
     out["curves"] = (_csv(p, ("estimand", "method", "arm", "day", "risk", "ci_low", "ci_high",
                               "at_risk")) if p.is_file() else None)
