@@ -66,5 +66,6 @@ def test_risk_difference_posterior_is_the_beta_difference():
     assert abs(reps.std(ddof=1) / sd - 1) < 4 / np.sqrt(2 * R)
     assert stats.ks_2samp(reps, draws).pvalue > 0.001
     # the IPW difference (a covariate unrelated to treatment) follows the same posterior
-    j = keys.index(("y", "intention_to_treat", "ATE", "ipw", "mean_difference", None, "treat", "comp"))
+    j = keys.index(("y", "intention_to_treat", "ATE", "ipw", "mean_difference", None, "treat", "comp",
+                     None))
     assert abs(run.row_reps[:, j].std(ddof=1) / sd - 1) < 0.2

@@ -275,13 +275,14 @@ def test_synthetic_cohort_known_truth(tmp_path):
     if not protocol.outcomes.measured():
         pytest.skip("the synthetic protocol has no measured outcome")
     m = protocol.outcomes.measured()[0]
-    outcomes = dataclasses.replace(protocol.outcomes, primary=m, secondary=(), negative_controls=())
+    outcomes = dataclasses.replace(protocol.outcomes, primary=m, secondary=(), negative_controls=(),
+                                   for_decision=())
     boot = dataclasses.replace(protocol.analysis.bootstrap, replicates=20)
-    protocol = dataclasses.replace(protocol, outcomes=outcomes, estimands=("ATE", "ATT"),
+    protocol = dataclasses.replace(protocol, outcomes=outcomes, estimands=("ATE", "ATT"), decision=None,
                                    analysis=dataclasses.replace(protocol.analysis, bootstrap=boot))
     cohort = build_cohort(open_extract(tmp_path, protocol), protocol).cohort
     res = estimate_effects(cohort, protocol, workers=2, progress=False)
-    e = res.estimates[res.estimates.measure == "mean_difference"]
+    e = res.estimates[(res.estimates.measure == "mean_difference") & res.estimates.subgroup.isna()]
     assert len(e) == 1 + 2 * len(protocol.analysis.methods)
     for row in e.itertuples():
         target = truth["measured"][m.measure][row.estimand or "ATE"]["mean_difference"]

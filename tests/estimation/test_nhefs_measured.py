@@ -184,5 +184,5 @@ def test_unadjusted_and_other_methods_are_consistent(censored):
             assert pick(res, est, method).estimate == pytest.approx(3.45, abs=0.2)
     assert list(e.columns) == ["outcome", "contrast", "estimand", "method", "measure", "horizon_day",
                                "arm", "comparator", "estimate", "ci_low", "ci_high", "se", "n",
-                               "events", "note"]
+                               "events", "note", "subgroup"]
     assert res.bootstrap["completed"] == 20 and res.bootstrap["failed"] == 0
