@@ -30,7 +30,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from emulant.estimation.bootstrap import bootstrap_intervals
+from emulant.estimation.intervals import bootstrap_intervals
 from emulant.protocol import Protocol
 
 DECISION_COLUMNS = ("contrast", "estimand", "method", "measure", "arm", "comparator", "outcome",

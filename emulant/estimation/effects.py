@@ -26,14 +26,13 @@ from emulant.errors import EmulantError, NonConvergenceWarning, ReplicateFailure
 from emulant.estimation.bootstrap import (
     ROW_KEY,
     BootstrapRun,
-    attach_intervals,
-    non_estimable_replicates,
     row_key,
     run_bootstrap,
 )
 from emulant.estimation.chunks import PointEstimate, combine_runs
 from emulant.estimation.decision import DECISION_COLUMNS, decision_table
 from emulant.estimation.evalue import e_value_rows
+from emulant.estimation.intervals import attach_intervals, non_estimable_replicates
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
 from emulant.estimation.sample import (
     TREATED,

@@ -13,6 +13,7 @@ import pytest
 from test_effects import cohort_frame, linear_world, make_protocol
 
 from emulant.estimation import bootstrap as B
+from emulant.estimation import intervals as I
 from emulant.estimation.effects import estimate_effects
 
 COVS = (("x1", "continuous"), ("x2", "binary"))
@@ -80,11 +81,11 @@ def test_a_fragile_cohort_stops_the_run():
 
 def test_wald_and_percentile_by_hand():
     reps = np.array([[1.0], [2.0], [3.0], [4.0], [5.0]])
-    se, lo, hi = B.bootstrap_intervals(np.array([3.0]), reps, np.array([False]), "wald")
+    se, lo, hi = I.bootstrap_intervals(np.array([3.0]), reps, np.array([False]), "wald")
     sd = np.sqrt(2.5)  # hand computation: SD of 1..5 with n - 1
     assert se[0] == pytest.approx(sd) and lo[0] == pytest.approx(3 - 1.959964 * sd)
     assert hi[0] == pytest.approx(3 + 1.959964 * sd)
-    se, lo, hi = B.bootstrap_intervals(np.array([3.0]), reps, np.array([False]), "percentile")
+    se, lo, hi = I.bootstrap_intervals(np.array([3.0]), reps, np.array([False]), "percentile")
     # hand computation: linear interpolation, positions 0.1 and 3.9 of the sorted replicates
     assert (lo[0], hi[0]) == pytest.approx((1.1, 4.9)) and se[0] == pytest.approx(sd)
 
@@ -92,7 +93,7 @@ def test_wald_and_percentile_by_hand():
 def test_ratios_on_the_log_scale():
     logs = np.log([0.5, 1.0, 2.0, 4.0])
     reps = np.exp(logs)[:, None]
-    se, lo, hi = B.bootstrap_intervals(np.array([1.5]), reps, np.array([True]), "wald")
+    se, lo, hi = I.bootstrap_intervals(np.array([1.5]), reps, np.array([True]), "wald")
     sd = np.std(logs, ddof=1)
     assert se[0] == pytest.approx(sd)  # reported on the log scale
     assert lo[0] == pytest.approx(1.5 * np.exp(-1.959964 * sd))
@@ -117,7 +118,7 @@ def test_progress_callback_and_curve_intervals():
                "day": d, "risk": 0.1 * d, "at_risk": 10} for d in (1, 2)]
     run = B.BootstrapRun(3, 1, "percentile", np.zeros((3, 0)),
                          np.array([[0.1, 0.2], [0.2, 0.3], [0.3, 0.1]]), [0, 1, 2])
-    _, out = B.attach_intervals([], curves, run, "percentile")
+    _, out = I.attach_intervals([], curves, run, "percentile")
     assert out[0]["ci_low"] == pytest.approx(0.105) and out[1]["ci_high"] == pytest.approx(0.295)
 
 

@@ -14,8 +14,8 @@ import pytest
 from decision_example import PROTOCOL, REPS, ROWS, _row
 from two_arm import two_arm_protocol
 
-from emulant.estimation.bootstrap import Z_975
 from emulant.estimation.decision import decision_table, nnt, probability_lowest
+from emulant.estimation.intervals import Z_975
 
 
 def _get(df, measure, arm=None, outcome=None):

@@ -19,6 +19,7 @@ from two_arm import two_arm_protocol
 
 from emulant import columns
 from emulant.estimation import bootstrap as B
+from emulant.estimation import intervals as I
 from emulant.estimation.cox import cox_fit, cox_hazard_ratio
 from emulant.estimation.effects import non_estimable_account
 from emulant.estimation.evalue import e_value_rows
@@ -114,12 +115,12 @@ def test_bootstrap_counts_replicates_whose_ratio_is_zero_or_infinite():
     reps[3, 0] = np.inf  # 1 of 40 (2.5%): interval from the other 39, counted
     reps[[1, 5, 9], 1] = [np.inf, np.nan, 0.0]  # 3 of 40 (7.5% > 5%): no interval
     run = B.BootstrapRun(k, 1, "wald", reps, np.zeros((k, 0)), completed_ids=list(range(k)))
-    out, _ = B.attach_intervals(rows, [], run, "wald")
+    out, _ = I.attach_intervals(rows, [], run, "wald")
     # the first row's interval is the Wald interval of the 39 finite log values (hand formula)
     logs = np.log(np.delete(reps[:, 0], 3))
     sd = np.std(logs, ddof=1)
     assert out[0]["se"] == pytest.approx(sd)
-    assert out[0]["ci_low"] == pytest.approx(1.5 * np.exp(-B.Z_975 * sd))
+    assert out[0]["ci_low"] == pytest.approx(1.5 * np.exp(-I.Z_975 * sd))
     assert out[0]["note"] == ("1 of 40 bootstrap replicates not estimable (missing, 0 or "
                               "infinite); interval from the others")
     assert np.isnan(out[1]["ci_low"]) and np.isnan(out[1]["se"]) and "no interval" in out[1]["note"]
