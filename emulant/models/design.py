@@ -162,7 +162,7 @@ def _spline_term(name: str, x: np.ndarray) -> Term:
             continue
         basis = np.column_stack([x, rcs_basis(x, knots)])
         if not _dependent(basis).any():
-            cols = (name, *(f"{name}_rcs{j + 1}" for j in range(len(knots) - 2)))
+            cols = (name, *(f"{name} (spline {j + 1})" for j in range(len(knots) - 2)))
             return Term(name, "spline", cols, knots=knots)
     return Term(name, "linear", (name,))
 
@@ -172,7 +172,7 @@ def _term(name: str, kind: str, s: pd.Series, continuous: str) -> Term:
         v = _as_levels(s)
         counts = v.value_counts(sort=False)
         order = sorted(counts.index, key=lambda lev: (-counts[lev], str(lev)))
-        return Term(name, "categorical", tuple(f"{name}[{lev}]" for lev in order[1:]),
+        return Term(name, "categorical", tuple(f"{name}: {lev}" for lev in order[1:]),
                     levels=tuple(order[1:]), reference=order[0])
     x = _as_numeric(s, name)
     if kind == "binary":
@@ -188,7 +188,7 @@ def _term(name: str, kind: str, s: pd.Series, continuous: str) -> Term:
     if continuous == "spline":
         return _spline_term(name, x)
     if continuous == "quadratic" and len(np.unique(x)) > 2:
-        return Term(name, "quadratic", (name, f"{name}^2"))
+        return Term(name, "quadratic", (name, f"{name} (squared)"))
     return Term(name, "linear", (name,))
 
 

@@ -54,6 +54,16 @@ def integer(x: Any) -> str:
     return f"{int(round(float(x))):,}"
 
 
+def yesno(x: Any) -> str:
+    """A truth value as ``yes`` or ``no`` (empty when missing; other text unchanged)."""
+    if missing(x):
+        return ""
+    if isinstance(x, bool) or x in (0, 1):
+        return "yes" if x else "no"
+    t = str(x).strip().lower()
+    return {"true": "yes", "false": "no"}.get(t, str(x))
+
+
 def text(x: Any) -> str:
     """Anything as text; empty for missing."""
     return "" if missing(x) else str(x)

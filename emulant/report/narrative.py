@@ -289,7 +289,7 @@ def assumptions(p: Protocol, ctx: dict, design: bool) -> list[dict]:
                       "consistent if either model is right."
                       + ("" if not pos or not pos["model"]["warnings"] else
                          " Model warnings: " + "; ".join(pos["model"]["warnings"]))],
-         "threat": bool(pos and pos["model"]["converged"] == "False")},
+         "threat": bool(pos and pos["model"]["converged"] == "no")},
         {"id": "time-zero", "name": "Time zero aligned with eligibility and assignment",
          "statement": "Eligibility, assignment and the start of follow-up coincide, so no "
                       "immortal time or selection after baseline enters.",

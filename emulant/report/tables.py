@@ -187,7 +187,7 @@ def positivity(pos: dict, protocol: Protocol, weights: pd.DataFrame | None) -> d
             "largest": ", ".join(fmt.sig(x) for x in (w.get("largest") or [])[:5]),
             "top1pct_share": fmt.num(100 * w["top1pct_share"], 1) + "%"
             if not fmt.missing(w.get("top1pct_share")) else "",
-            "truncated": fmt.text(w.get("truncated")),
+            "truncated": fmt.yesno(w.get("truncated")),
         })
     model = pos.get("model") or {}
     return {
@@ -199,8 +199,8 @@ def positivity(pos: dict, protocol: Protocol, weights: pd.DataFrame | None) -> d
                     "share": dc.show_percent(ext.get("n"), sum(float(v) for v in n.values())
                                              if n else None, m, digits=2)},
         "weights": wrows,
-        "model": {"converged": fmt.text(model.get("converged")),
-                  "penalized": fmt.text(model.get("penalized")),
+        "model": {"converged": fmt.yesno(model.get("converged")),
+                  "penalized": fmt.yesno(model.get("penalized")),
                   "warnings": [str(x) for x in model.get("warnings") or []],
                   "columns": ", ".join(map(str, model.get("columns") or [])),
                   "dropped": [f"{d.get('column')}: {d.get('reason')}" if isinstance(d, dict)

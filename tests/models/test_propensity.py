@@ -167,7 +167,7 @@ def test_categorical_reference_is_the_most_frequent_level_and_indicators():
     kinds = {"region": "categorical", "hba1c": "continuous", "bmi": "continuous",
              "const": "continuous", "double_bmi": "continuous"}
     design = build_design(cohort, list(kinds), kinds, "linear")
-    assert design.columns == ("region[east]", "region[north]", "hba1c", "hba1c_missing", "bmi")
+    assert design.columns == ("region: east", "region: north", "hba1c", "hba1c_missing", "bmi")
     assert design.terms[0].reference == "south"
     assert dict(design.dropped) == {"bmi_missing": "constant", "const": "constant",
                                     "double_bmi": "linear in the earlier columns"}
@@ -188,7 +188,7 @@ def test_quadratic_and_errors_name_the_column():
         build_design(cohort, ["bmi"], {"bmi": "continuous"})
     d = build_design(cohort.iloc[:5], ["age", "sex"], {"age": "continuous", "sex": "binary"},
                      "quadratic")
-    assert d.columns == ("age", "age^2", "sex[M]")
+    assert d.columns == ("age", "age (squared)", "sex: M")
     np.testing.assert_array_equal(d.transform(cohort.iloc[:3])[:, 1], [1600, 2500, 3600])
 
 
