@@ -86,6 +86,8 @@ def as_input(p: Protocol) -> dict[str, Any]:
             "bootstrap": {"replicates": a.bootstrap.replicates, "seed": a.bootstrap.seed,
                           "interval": a.bootstrap.interval, "kind": a.bootstrap.kind},
             "balance": {"smd_threshold": a.smd_threshold},
+            "primary": {"method": a.primary.method, "estimand": a.primary.estimand,
+                        "horizon_day": a.primary.horizon_day},
         },
         "report": {"min_cell": p.report.min_cell},
         "decision": None if p.decision is None else {

@@ -230,6 +230,13 @@ KEYS: tuple[Key, ...] = (
         rule="multinomial: counts Multinomial(n, 1/n, ..., 1/n) (Efron); bayesian: n times Dirichlet(1, ..., 1) weights (Rubin 1981), so shares of replicates are posterior probabilities"),
     Key("analysis.balance", "mapping", "covariate balance", {}),
     Key("analysis.balance.smd_threshold", "number", "an absolute standardised mean difference above this is flagged", 0.1, example=0.1),
+    Key("analysis.primary", "mapping", "the pre-specified primary estimate the report leads with (at a glance, marked in the forest plot)", {}),
+    Key("analysis.primary.method", "choice", "its estimator: one of analysis.methods", None, tuple(m for m in METHODS if m != "unadjusted"), example="ipw",
+        default_note="the first of analysis.methods"),
+    Key("analysis.primary.estimand", "choice", "its estimand: one of estimands", None, ESTIMANDS, example="ATE",
+        default_note="the first of estimands"),
+    Key("analysis.primary.horizon_day", "integer", "its horizon: one of analysis.horizons_days (ignored for a measured primary outcome)", None, minimum=1, example=1095,
+        default_note="the last of analysis.horizons_days"),
     # ------------------------------------------------------------------ report
     Key("report", "mapping", "the report", {}),
     Key("report.min_cell", "integer", "the smallest count shown; counts 1 .. min_cell-1 are shown as '<min_cell'", 5, minimum=1, example=5),

@@ -189,6 +189,14 @@ class Bootstrap:
 
 
 @dataclass(frozen=True)
+class Primary:
+    """The pre-specified primary estimate the report leads with (``analysis.primary``)."""
+    method: str = "ipw"
+    estimand: str = "ATE"
+    horizon_day: int = 1095  # ignored when the primary outcome is measured (no horizon)
+
+
+@dataclass(frozen=True)
 class Analysis:
     propensity: Propensity = Propensity()
     weights: WeightSettings = WeightSettings()
@@ -199,6 +207,7 @@ class Analysis:
     censoring_weights: bool = False
     bootstrap: Bootstrap = Bootstrap()
     smd_threshold: float = 0.1
+    primary: Primary = Primary()
 
 
 @dataclass(frozen=True)

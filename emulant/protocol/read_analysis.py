@@ -14,11 +14,14 @@ from emulant.protocol.model import (
     Analysis,
     Bootstrap,
     FollowUp,
+    Primary,
     Propensity,
     ReportSettings,
     Strategies,
     WeightSettings,
 )
+
+ADJUSTED = tuple(m for m in METHODS if m != "unadjusted")  # what analysis.primary.method may be
 
 
 def read_estimands(c: Collector, top: dict, strategies: Strategies | None = None) -> tuple[tuple[str, ...], tuple[str, ...]]:
@@ -37,8 +40,8 @@ def read_estimands(c: Collector, top: dict, strategies: Strategies | None = None
     return estimands, contrasts
 
 
-def read_analysis(c: Collector, node: Any, follow: FollowUp) -> Analysis:
-    """``analysis``: propensity, weights, horizons, methods, periods, censoring weights, bootstrap, balance."""
+def read_analysis(c: Collector, node: Any, follow: FollowUp, estimands: tuple[str, ...] = ("ATE", "ATT")) -> Analysis:
+    """``analysis``: propensity, weights, horizons, methods, periods, censoring weights, bootstrap, balance, primary."""
     a = c.mapping(node, "analysis", known("analysis"))
     p = c.mapping(a.get("propensity"), "analysis.propensity", known("analysis.propensity"))
     w = c.mapping(a.get("weights"), "analysis.weights", known("analysis.weights"))
@@ -70,8 +73,27 @@ def read_analysis(c: Collector, node: Any, follow: FollowUp) -> Analysis:
                   c.choice(b.get("interval"), "analysis.bootstrap.interval", ("wald", "percentile"), "wald") or "wald",
                   c.choice(b.get("kind"), "analysis.bootstrap.kind", BOOTSTRAP_KINDS, "multinomial") or "multinomial"),
         c.number(bal.get("smd_threshold"), "analysis.balance.smd_threshold", 0.1),
+        read_primary(c, a.get("primary"), methods, estimands, tuple(sorted(set(horizons)))),
     )
     return analysis
+
+
+def read_primary(c: Collector, node: Any, methods: tuple[str, ...], estimands: tuple[str, ...],
+                 horizons: tuple[int, ...]) -> Primary:
+    """``analysis.primary``: the pre-specified primary estimate; by default the first method and
+    the first estimand at the last horizon. Each must be one the analysis produces."""
+    p = c.mapping(node, "analysis.primary", known("analysis.primary"))
+    method = c.choice(p.get("method"), "analysis.primary.method", ADJUSTED, None)
+    estimand = c.choice(p.get("estimand"), "analysis.primary.estimand", ESTIMANDS, None)
+    day = c.integer(p.get("horizon_day"), "analysis.primary.horizon_day", None, 1)
+    for key, v, among, what in (("method", method, methods, "analysis.methods"),
+                                ("estimand", estimand, estimands, "estimands"),
+                                ("horizon_day", day, horizons, "analysis.horizons_days")):
+        if v is not None and among and v not in among:
+            c.add(f"analysis.primary.{key}", f"expected one of {what} ({', '.join(map(str, among))}), got {v!r}")
+    return Primary(method if method in methods else (methods[0] if methods else "ipw"),
+                   estimand if estimand in estimands else (estimands[0] if estimands else "ATE"),
+                   day if day in horizons else (horizons[-1] if horizons else 1095))
 
 
 def read_report(c: Collector, node: Any) -> ReportSettings:

@@ -35,7 +35,7 @@ def render_html(ctx: dict) -> str:
     """Render a context (from :func:`build_context`) to the page's HTML text."""
     env = _environment()
     css = Markup((HERE / "style.css").read_text(encoding="utf-8"))
-    svg = {k: Markup(v) for k, v in ctx.items() if k.endswith("_svg") and v}
+    svg = {k: (Markup(v) if v else None) for k, v in ctx.items() if k.endswith("_svg")}
     curves = ctx.get("curves") or []
     for c in curves:
         c["svg"] = Markup(c["svg"])

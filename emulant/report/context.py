@@ -10,14 +10,18 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from emulant.protocol import Protocol
+from emulant.protocol import Protocol, outcome_name
 from emulant.protocol.as_input import as_input_yaml
 from emulant.report import decision, figures, fmt, narrative, results, tables, target
 from emulant.report import disclosure as dc
+from emulant.report.compact import compact_tables
+from emulant.report.forest import forest_figure, forest_rows
+from emulant.report.glance import glance
 from emulant.report.load import read_results
 
 SECTIONS = (
     ("question", "The question"),
+    ("glance", "At a glance"),
     ("warnings", "Warnings"),
     ("decision", "Decision summary"),
     ("disclosure", "How counts are shown"),
@@ -138,6 +142,7 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
     if not design:
         est = raw["estimates"]
         ctx["estimates"] = results.estimates(est, p) if est is not None else None
+        ctx["compact"] = compact_tables(est, p) if est is not None else None
         ctx["negative_controls"] = results.negative_controls(est, p)
         cv = raw["curves"]
         curves = results.curves(cv, p) if cv is not None else None
@@ -154,19 +159,27 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         events = results.events_by_arm(raw["cohort"], est, p)
         ctx["comparison"] = comparison_context(comparison, p) if comparison else None
     else:
-        ctx.update(estimates=None, negative_controls=[], curves=None, censoring=None,
+        ctx.update(estimates=None, compact=None, negative_controls=[], curves=None, censoring=None,
                    decision=None, subgroups=None,
                    measured_missing=[],
                    bootstrap=None, comparison=None)
 
     ctx["warnings"] = narrative.warnings(p, raw, events, design, ctx["negative_controls"])
+    ctx["glance"] = glance(ctx, raw, p, design)
+    ctx["forest_svg"] = ctx["nc_forest_svg"] = None
+    if not design and raw["estimates"] is not None:
+        prim = forest_rows(raw["estimates"], p, [fmt.text(outcome_name(p.outcomes.primary))])
+        ctx["forest_svg"] = forest_figure(prim, p.estimands) if prim else None
+        ncs = forest_rows(raw["estimates"], p, list(p.outcomes.negative_controls))
+        ctx["nc_forest_svg"] = (forest_figure(ncs, p.estimands, prefix="fig-nc-forest")
+                                if ncs else None)
     ctx["trial"] = narrative.emulation_rows(p, att, ctx["bootstrap"], design)
     ctx["assumptions"] = narrative.assumptions(p, ctx, design)
     ctx["manifest"] = manifest_context(manifest) if manifest else None
     ctx["protocol_yaml"] = as_input_yaml(p)
     ctx["codelists"] = codelists(p)
 
-    present = {"question", "target-trial", "assumptions", "manifest", "protocol", "codelists"}
+    present = {"question", "glance", "target-trial", "assumptions", "manifest", "protocol", "codelists"}
     for sid, key in (("provenance", "provenance"), ("attrition", "attrition"),
                      ("baseline", "baseline"), ("positivity", "positivity")):
         if ctx[key]:

@@ -11,6 +11,7 @@ import pandas as pd
 from emulant.protocol import MeasuredOutcome, Protocol
 from emulant.report import disclosure as dc
 from emulant.report import fmt
+from emulant.report.glance import CENSORING_GAP_PP, censoring_gap
 from emulant.wording import censoring_assumption, methods_note
 
 COMPONENTS = (
@@ -175,6 +176,12 @@ def warnings(p: Protocol, raw: dict[str, Any], events: dict[str, float], design:
                 out.append({"section": "results", "text":
                             f"{o}: {len(g)} estimate(s) ({', '.join(sorted(set(g['measure'].astype(str))))}) "
                             f"{note}."})
+        gap = censoring_gap(raw.get("cohort"), p)
+        if gap and gap[1] > CENSORING_GAP_PP:
+            out.append({"section": "assumption-censoring", "text":
+                        "Censoring differs between the arms: the shares whose follow-up ended at "
+                        f"coverage end differ by more than {CENSORING_GAP_PP:g} percentage points "
+                        "(see the end-of-follow-up table)."})
         b = raw.get("bootstrap")
         if b and (b.get("failed") or 0) > 0:
             out.append({"section": "results", "text":

@@ -166,6 +166,22 @@ def test_unknown_estimand(tmp_path):
     assert "expected one of ATE, ATT, ATO, got 'ATU'" in msg
 
 
+def test_primary_estimate_follows_the_analysis_and_names_bad_keys(tmp_path):
+    d = protocol_dict()
+    d["estimands"] = ["ATT"]
+    d["analysis"].update(methods=["doubly_robust", "ipw"], horizons_days=[365, 730])
+    p = load_protocol(write_protocol(tmp_path, d))
+    assert (p.analysis.primary.method, p.analysis.primary.estimand,
+            p.analysis.primary.horizon_day) == ("doubly_robust", "ATT", 730)
+    probs = problems_of(tmp_path, lambda d: d["analysis"].update(
+        methods=["ipw"], primary={"method": "standardization", "estimand": "ATO",
+                                  "horizon_day": 400, "measure": "x"}))
+    assert "got 'standardization'" in one(probs, "analysis.primary.method:")
+    assert "got 'ATO'" in one(probs, "analysis.primary.estimand:")
+    assert "got 400" in one(probs, "analysis.primary.horizon_day:")
+    one(probs, "analysis.primary.measure:")
+
+
 @pytest.mark.parametrize("bad_id", ["Tiny_Test", "tiny test", "études", ""])
 def test_bad_study_id(tmp_path, bad_id):
     msg = one(problems_of(tmp_path, lambda d: d["study"].update(id=bad_id)), "study.id:")
@@ -212,6 +228,8 @@ def test_defaults_filled(tmp_path):
     assert a["analysis"]["propensity"] == {"model": "logistic", "continuous": "spline"}
     assert a["analysis"]["period_days"] == 30 and a["analysis"]["smd_threshold"] == 0.1
     assert a["report"]["min_cell"] == 5
+    # the primary estimate: first method and estimand at the last horizon (issue 19)
+    assert a["analysis"]["primary"] == {"method": "ipw", "estimand": "ATE", "horizon_day": 1095}
     assert a["concepts"]["t2d"]["match"] == "prefix"
     assert a["concepts"]["death"]["source"] == "deaths"
     assert a["follow_up"] == {"max_days": 1095, "administrative_end": "2022-12-31"}
