@@ -15,6 +15,7 @@ from emulant.protocol.as_input import as_input_yaml
 from emulant.report import decision, figures, fmt, narrative, results, tables, target
 from emulant.report import disclosure as dc
 from emulant.report.compact import compact_tables
+from emulant.report.curve_steps import curve_rule_text
 from emulant.report.forest import forest_figure, forest_rows
 from emulant.report.glance import glance
 from emulant.report.load import read_results
@@ -105,7 +106,8 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
     p = protocol
     m = p.report.min_cell
     raw = read_results(results_dir, p, design)
-    ctx: dict[str, Any] = {"design": design, "min_cell": m, "rule": dc.rule_text(m)}
+    ctx: dict[str, Any] = {"design": design, "min_cell": m, "rule": dc.rule_text(m),
+                           "curve_rule": curve_rule_text(m)}
     ctx["title"] = p.study.title or p.study.id
     ctx["question"] = p.study.question
     ctx["study_id"] = p.study.id
@@ -145,10 +147,11 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         ctx["compact"] = compact_tables(est, p) if est is not None else None
         ctx["negative_controls"] = results.negative_controls(est, p)
         cv = raw["curves"]
-        curves = results.curves(cv, p) if cv is not None else None
+        curves = results.curves(cv, p, raw["cohort"]) if cv is not None else None
         if curves:
             for i, c in enumerate(curves):
-                c["svg"] = figures.curves_figure(c["panels"], prefix=f"fig-curves{i}")
+                c["svg"] = figures.curves_figure(c["panels"], prefix=f"fig-curves{i}",
+                                                  ticks=c["ticks"])
         ctx["curves"] = curves
         ctx["censoring"] = results.censoring(raw["cohort"], p)
         ctx["measured_missing"] = results.measured_missing(raw["cohort"], p)

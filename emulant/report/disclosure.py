@@ -8,8 +8,8 @@ The one rule (stated in the report, :data:`RULE`):
   cell could be recovered by subtraction, a second cell is suppressed too (the next smallest);
 * a statistic computed from a suppressed count alone (the unweighted proportion of a category,
   its unweighted SMD, a crude risk in an arm with few events) is not shown either;
-* risk curves are drawn on a coarse grid, numbers at risk are shown only at grid times, and a
-  curve stops at the last grid time at which at least ``min_cell`` persons remain at risk.
+* risk curves and numbers at risk follow :mod:`emulant.report.curve_steps` (a drawn step pools
+  at least ``min_cell`` events; a curve stops where fewer than ``min_cell`` remain at risk).
 
 Primary and secondary cell suppression is common practice in registry research and official
 statistics (no single source; e.g. the cell-suppression chapters of statistical-agency
@@ -35,9 +35,7 @@ def rule_text(min_cell: int) -> str:
         f"suppressed cell could be recovered by subtraction, the next smallest cell is suppressed "
         f"too and shown as \u201c{SECONDARY}\u201d. A statistic computed from a suppressed count "
         f"(a crude proportion, its unweighted SMD, a crude risk in an arm with fewer than "
-        f"{min_cell} events) is not shown. Risk curves are drawn on a coarse grid of days, numbers "
-        f"at risk are given only at grid times, and each curve stops at the last grid time with at "
-        f"least {min_cell} persons at risk. In figures, suppressed counts are drawn hatched at the "
+        f"{min_cell} events) is not shown. In figures, suppressed counts are drawn hatched at the "
         f"next multiple of {min_cell}. The same rule applies to every table and figure label."
     )
 
@@ -177,12 +175,3 @@ def coarse_grid(days: Sequence[float], max_points: int = 13) -> list[float]:
             out.append(float(at.max()))
     return sorted(set(out))
 
-
-def curve_end(grid_days: Sequence[float], at_risk: Sequence[float], min_cell: int) -> float | None:
-    """The last grid day up to which at least ``min_cell`` persons stay at risk (None: none)."""
-    last = None
-    for day, n in zip(grid_days, at_risk, strict=True):
-        if n is None or (isinstance(n, float) and math.isnan(n)) or n < min_cell:
-            break
-        last = day
-    return last

@@ -161,11 +161,13 @@ def overlap_figure(edges: Sequence[float], arms: Sequence[dict],
         return to_svg(fig, prefix)
 
 
-def curves_figure(panels: Sequence[dict], prefix: str = "fig-curves") -> str:
-    """Cumulative risk per arm on the coarse grid, one panel per method.
+def curves_figure(panels: Sequence[dict], prefix: str = "fig-curves",
+                  ticks: Sequence[float] = ()) -> str:
+    """Cumulative risk per arm in percent, one panel per method, as steps at the drawn days.
 
     ``panels``: dicts with ``title`` and ``arms`` (dicts with ``name``, ``day``, ``risk``,
-    ``lo``, ``hi`` — lists already cut at the disclosure end of the curve).
+    ``lo``, ``hi`` — only the days the disclosure rule lets a step be drawn at). ``ticks``: the
+    days of the numbers at risk, so the axis lines up with the table under the figure.
     """
     k = max(len(panels), 1)
     ncols = 2 if k > 1 else 1
@@ -182,15 +184,21 @@ def curves_figure(panels: Sequence[dict], prefix: str = "fig-curves") -> str:
                 colour = ARM_COLOURS[j % 2]
                 if not arm["day"]:
                     continue
-                ax.step(arm["day"], arm["risk"], where="post", color=colour, lw=1.4,
+                pct = [100 * v for v in arm["risk"]]
+                ax.step(arm["day"], pct, where="post", color=colour, lw=1.4,
                         label=_t(arm["name"]))
                 if all(v is not None for v in arm["lo"] + arm["hi"]) and arm["lo"]:
-                    ax.fill_between(arm["day"], arm["lo"], arm["hi"], step="post",
+                    ax.fill_between(arm["day"], [100 * v for v in arm["lo"]],
+                                    [100 * v for v in arm["hi"]], step="post",
                                     color=colour, alpha=0.15, lw=0)
             ax.set_title(_t(p["title"]), fontsize=9, loc="left")
             ax.set_xlabel("days since time zero")
             ax.grid(color="#E5E5E5", lw=0.5)
             if idx % ncols == 0:
-                ax.set_ylabel("cumulative risk")
+                ax.set_ylabel("cumulative risk (%)")
+            if ticks:
+                every = 2 if len(ticks) > 8 else 1
+                ax.set_xticks(list(ticks), [f"{t:,.0f}" if i % every == 0 else ""
+                                            for i, t in enumerate(ticks)], fontsize=7.5)
             ax.legend(fontsize=7.5, frameon=False, loc="upper left")
         return to_svg(fig, prefix)

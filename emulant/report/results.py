@@ -14,6 +14,7 @@ from emulant import columns as col
 from emulant.protocol import Protocol, outcome_name
 from emulant.report import disclosure as dc
 from emulant.report import fmt
+from emulant.report.curve_steps import events_by_day, pooled_steps
 from emulant.wording import hazard_ratio_label
 
 METHOD_ORDER = ("unadjusted", "ipw", "standardization", "doubly_robust")
@@ -146,19 +147,24 @@ def negative_controls(est: pd.DataFrame | None, protocol: Protocol) -> list[dict
     return out
 
 
-def curves(cv: pd.DataFrame, protocol: Protocol) -> list[dict]:
-    """Risk curves per estimand (a figure each, a panel per method) on the coarse grid.
+def curves(cv: pd.DataFrame, protocol: Protocol, cohort: pd.DataFrame | None = None) -> list[dict]:
+    """Risk curves of the primary outcome per estimand (a figure each, a panel per method).
 
-    Returns dicts with ``estimand``, ``panels`` (for :func:`figures.curves_figure`), ``grid``
-    (grid days as text) and ``at_risk`` (one row per arm: numbers at risk at grid times).
+    Each arm's curve keeps the days :func:`curve_steps.pooled_steps` allows (a step only where
+    it pools at least ``min_cell`` events; none without the cohort's follow-up columns). Returns
+    dicts with ``estimand``, ``panels`` (for :func:`figures.curves_figure`), ``grid`` (days of
+    the numbers at risk, as text), ``ticks`` (the same days as numbers) and ``at_risk``.
     """
     m = protocol.report.min_cell
     arms = list(protocol.strategies.arm_names)
+    prim = outcome_name(protocol.outcomes.primary)
     if "outcome" in cv.columns:  # the primary outcome's curves; other outcomes are in curves.csv
-        cv = cv[cv["outcome"].astype(str) == str(protocol.outcomes.primary)]
+        cv = cv[cv["outcome"].astype(str) == str(prim)]
         if cv.empty:
             return []
-    grid = dc.coarse_grid(pd.to_numeric(cv["day"], errors="coerce").dropna().tolist())
+    grid = dc.coarse_grid(pd.to_numeric(cv["day"], errors="coerce").dropna().tolist(),
+                          max_points=14)
+    events = {a: events_by_day(cohort, protocol, str(prim), a) for a in arms}
     out = []
     ests = [""] + list(protocol.estimands)
     ests += sorted({str(e) for e in cv["estimand"].dropna()} - set(ests))
@@ -174,22 +180,24 @@ def curves(cv: pd.DataFrame, protocol: Protocol) -> list[dict]:
             for a in arms:
                 ga = gm[gm["arm"].astype(str) == a].copy()
                 ga["day"] = pd.to_numeric(ga["day"], errors="coerce")
-                ga = ga[ga["day"].isin(grid)].sort_values("day").drop_duplicates("day")
+                ga = ga.dropna(subset=["day"]).sort_values("day").drop_duplicates("day")
                 ar = [_num(x) for x in ga["at_risk"]]
-                end = dc.curve_end(ga["day"].tolist(), ar, m)
-                keep = ga[ga["day"] <= end] if end is not None else ga.iloc[0:0]
+                steps = (pooled_steps(ga["day"].tolist(), ar, events[a], m)
+                         if events[a] is not None else [])
+                keep = ga.iloc[[i for i, _ in steps]]
                 panel_arms.append({
                     "name": a, "day": keep["day"].tolist(),
                     "risk": [_num(x) for x in keep["risk"]],
                     "lo": [None if fmt.missing(x) else float(x) for x in keep["ci_low"]],
                     "hi": [None if fmt.missing(x) else float(x) for x in keep["ci_high"]],
+                    "pooled": [k for _, k in steps],
                 })
                 at = dict(zip(ga["day"].tolist(), ar, strict=True))
                 nar.append({"arm": a, "values": [dc.show_count(at.get(d), m) for d in grid]})
             panels.append({"title": METHOD_LABEL.get(meth, meth), "arms": panel_arms})
             if risk_rows is None:
                 risk_rows = nar
-        out.append({"estimand": e or "unadjusted", "panels": panels,
+        out.append({"estimand": e or "unadjusted", "panels": panels, "ticks": grid,
                     "grid": [fmt.integer(d) for d in grid], "at_risk": risk_rows or []})
     return out
 
