@@ -128,15 +128,16 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         base = None
     ctx["baseline"] = base
     ctx["balance_only"] = raw["balance"] is not None and base is None
-    ctx["smd_svg"] = (figures.smd_dotplot(base["dots"], p.analysis.smd_threshold,
-                                          base["estimands"])
+    ctx["smd_svg"] = (figures.balance_figure(base["dots"], p.analysis.smd_threshold,
+                                             base["estimands"])
                       if base and base["dots"] else None)
     ctx["smd_threshold"] = fmt.num(p.analysis.smd_threshold, 2)
 
     pos = (tables.positivity(raw["positivity"], p, raw["weights"])
            if raw["positivity"] is not None else None)
     ctx["positivity"] = pos
-    ctx["overlap_svg"] = (figures.overlap_figure(pos["edges"], pos["hist"])
+    ctx["overlap_svg"] = (figures.overlap_figure(pos["edges"], pos["hist"], pos["weighted"],
+                                                 pos["weighted_title"])
                           if pos and pos["edges"] and all(len(h["heights"]) == len(pos["edges"]) - 1
                                                           for h in pos["hist"]) else None)
 

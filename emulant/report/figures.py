@@ -16,12 +16,13 @@ from collections.abc import Sequence
 import matplotlib
 
 matplotlib.use("Agg")
+import matplotlib.lines  # noqa: E402
+import matplotlib.patches  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 OKABE_ITO = ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#F0E442",
              "#000000")
 ARM_COLOURS = ("#0072B2", "#D55E00")
-MARKERS = ("o", "s", "^", "D")
 
 RC = {
     "svg.fonttype": "none",
@@ -98,66 +99,98 @@ def attrition_figure(steps: Sequence[dict], prefix: str = "fig-attrition") -> st
         return to_svg(fig, prefix)
 
 
-def smd_dotplot(rows: Sequence[dict], threshold: float, estimands: Sequence[str],
-                prefix: str = "fig-smd") -> str:
-    """Absolute SMDs per covariate row, before weighting and after each estimand's weights.
+def balance_figure(rows: Sequence[dict], threshold: float, estimands: Sequence[str],
+                   prefix: str = "fig-balance") -> str:
+    """Standardized mean differences before and after weighting, one band per covariate row.
 
-    ``rows``: dicts with ``label``, ``before`` (float or None when hidden) and ``after``
-    ({estimand: float or None}). A dashed line marks ``threshold``.
+    For each row and estimand an arrow runs from the unweighted SMD to the weighted one (signed,
+    treated minus comparator); rows are sorted by the size of the unweighted imbalance, largest
+    on top; the acceptable range ``|SMD| <= threshold`` is a shaded band. ``rows``: dicts with
+    ``label``, ``before`` (float, or None when hidden under the disclosure rule: then only the
+    weighted end is drawn) and ``after`` ({estimand: float or None}).
     """
-    n = max(len(rows), 1)
+    order = sorted(rows, key=lambda r: -abs(r["before"]) if r["before"] is not None else 0.0)
+    n = max(len(order), 1)
+    k = max(len(estimands), 1)
     with matplotlib.rc_context(RC):
-        fig = _figure(6.5, 0.24 * n + 1.4)
+        fig = _figure(6.5, 0.3 * n + 1.3)
         ax = fig.add_subplot()
+        ax.axvspan(-threshold, threshold, color="#E3F1EA", lw=0, zorder=0)
+        ax.axvline(0, color="#9A9A9A", lw=0.6, zorder=1)
         ys = list(range(n))[::-1]
-        ax.scatter([abs(r["before"]) if r["before"] is not None else float("nan") for r in rows],
-                   ys[: len(rows)], marker="o", facecolors="none", edgecolors="#555555",
-                   label="before weighting", s=22, zorder=3)
-        for k, est in enumerate(estimands):
-            vals = [r["after"].get(est) for r in rows]
-            dodge = 0.22 * (k + 1) / max(len(estimands), 1)
-            ax.scatter([abs(v) if v is not None else float("nan") for v in vals],
-                       [y - dodge for y in ys[: len(rows)]],
-                       marker=MARKERS[(k + 1) % len(MARKERS)], color=OKABE_ITO[k % 4],
-                       label=f"after {est} weighting", s=20, zorder=4)
-        ax.axvline(threshold, color="#000000", ls="--", lw=0.8, zorder=2)
-        ax.text(threshold, n - 0.4, f" threshold {threshold:g}", fontsize=7.5, va="bottom")
-        ax.set_yticks(ys[: len(rows)], [_t(r["label"]) for r in rows], fontsize=7.5)
-        ax.set_ylim(-0.7, n - 0.1)
-        ax.set_xlabel("absolute standardized mean difference")
-        ax.grid(axis="x", color="#DDDDDD", lw=0.5)
-        fig.legend(loc="outside lower center", fontsize=7.5, frameon=False,
+        span = 0.5 if k > 1 else 0.0
+        for y, r in zip(ys, order, strict=False):
+            if y % 2:
+                ax.axhspan(y - 0.5, y + 0.5, color="#F6F6F8", lw=0, zorder=0.5)
+            for j, est in enumerate(estimands):
+                after = r["after"].get(est)
+                yy = y + (span / 2 - span * j / max(k - 1, 1) if k > 1 else 0.0)
+                colour = OKABE_ITO[(2 * j) % len(OKABE_ITO)]
+                if after is None:
+                    continue
+                if r["before"] is not None:
+                    ax.annotate("", xy=(after, yy), xytext=(r["before"], yy), zorder=3,
+                                arrowprops={"arrowstyle": "-|>,head_length=0.35,head_width=0.18",
+                                            "color": colour, "lw": 1.1, "shrinkA": 0,
+                                            "shrinkB": 0})
+                ax.plot([after], [yy], marker="|", ms=7, mew=1.6, color=colour, zorder=4)
+            if r["before"] is not None:
+                ax.plot([r["before"]], [y], marker="|", ms=9, mew=1.0, color="#555555",
+                        zorder=2)
+        ax.set_yticks(ys[: len(order)], [_t(r["label"]) for r in order], fontsize=7.5)
+        ax.tick_params(axis="y", length=0)
+        ax.spines["left"].set_visible(False)
+        ax.set_ylim(-0.6, n - 0.4)
+        ax.set_xlabel("standardized mean difference (treated minus comparator)")
+        ax.grid(axis="x", color="#E2E2E2", lw=0.5)
+        handles = [matplotlib.patches.Patch(color="#E3F1EA", label=f"|SMD| ≤ {threshold:g}")]
+        handles += [matplotlib.lines.Line2D([], [], color=OKABE_ITO[(2 * j) % len(OKABE_ITO)],
+                                            lw=1.1, label=f"unweighted → {est} weights")
+                    for j, est in enumerate(estimands)]
+        fig.legend(handles=handles, loc="outside lower center", fontsize=7.5, frameon=False,
                    ncols=1 + len(estimands))
         return to_svg(fig, prefix)
 
 
-def overlap_figure(edges: Sequence[float], arms: Sequence[dict],
-                   prefix: str = "fig-overlap") -> str:
-    """Propensity distribution by arm as a mirrored histogram (first arm up, second down).
+def overlap_figure(edges: Sequence[float], arms: Sequence[dict], weighted: Sequence[dict] = (),
+                   weighted_title: str = "", prefix: str = "fig-overlap") -> str:
+    """Propensity scores by arm as outline densities on one axis; the bins outside the common
+    support (where either arm has no person) shaded; beside it, the same after weighting.
 
-    ``arms``: dicts with ``name``, ``heights`` (drawn heights: counts, or masked heights for
-    suppressed bins) and ``hidden`` (bool per bin: drawn hatched).
+    ``arms``: dicts with ``name``, ``heights`` (counts, or masked heights for suppressed bins)
+    and ``hidden`` (bool per bin: hatched under the outline). ``weighted``: the same dicts with
+    weighted masses per bin (may be empty: one panel only).
     """
+    panels = [("before weighting", arms)] + ([(weighted_title or "after weighting", weighted)]
+                                             if weighted else [])
+    both = [i for i in range(len(edges) - 1)
+            if all(a["heights"][i] > 0 for a in arms[:2])]
+    lo = edges[both[0]] if both else edges[0]
+    hi = edges[both[-1] + 1] if both else edges[-1]
     with matplotlib.rc_context(RC):
-        fig = _figure(6.5, 3.0)
-        ax = fig.add_subplot()
-        left = list(edges[:-1])
-        widths = [b - a for a, b in zip(edges[:-1], edges[1:], strict=True)]
-        for k, arm in enumerate(arms[:2]):
-            sign = 1 if k == 0 else -1
-            colour = ARM_COLOURS[k]
-            for x, w, h, hid in zip(left, widths, arm["heights"], arm["hidden"], strict=True):
-                ax.bar(x, sign * h, width=w, align="edge", color="white" if hid else colour,
-                       edgecolor=colour, hatch="////" if hid else None, lw=0.6,
-                       alpha=1.0 if hid else 0.8)
-            ax.bar([0], [0], color=colour, label=_t(arm["name"]))
-        ax.axhline(0, color="#444444", lw=0.6)
-        ax.set_xlim(edges[0], edges[-1])
-        ax.set_xlabel("propensity score (probability of the treated arm)")
-        ax.set_ylabel("persons (second arm drawn downwards)")
-        ticks = ax.get_yticks()
-        ax.set_yticks(ticks, [f"{abs(t):,.0f}" for t in ticks])
-        ax.legend(loc="upper center", fontsize=8, frameon=False, ncols=2)
+        fig = _figure(7.0, 2.6)
+        axes = fig.subplots(1, len(panels), sharey=True, squeeze=False)[0]
+        for ax, (title, data) in zip(axes, panels, strict=True):
+            for k, arm in enumerate(data[:2]):
+                colour = ARM_COLOURS[k]
+                tot = sum(arm["heights"]) or 1.0
+                dens = [h / tot for h in arm["heights"]]
+                ax.stairs(dens, edges, color=colour, lw=1.5, label=_t(arm["name"]),
+                          ls="-" if k == 0 else (0, (4, 1.5)))
+                for i, hid in enumerate(arm["hidden"]):
+                    if hid:
+                        ax.fill_between([edges[i], edges[i + 1]], 0, dens[i], facecolor="none",
+                                        edgecolor=colour, hatch="////", lw=0)
+            if lo > edges[0]:
+                ax.axvspan(edges[0], lo, color="#DADADA", alpha=0.6, lw=0, zorder=0)
+            if hi < edges[-1]:
+                ax.axvspan(hi, edges[-1], color="#DADADA", alpha=0.6, lw=0, zorder=0)
+            ax.set_xlim(edges[0], edges[-1])
+            ax.set_title(_t(title), fontsize=9, loc="left")
+            ax.set_xlabel("propensity score")
+            ax.grid(axis="y", color="#EAEAEA", lw=0.5)
+        axes[0].set_ylabel("share of the arm per bin")
+        axes[0].legend(fontsize=7.5, frameon=False, loc="upper right")
         return to_svg(fig, prefix)
 
 

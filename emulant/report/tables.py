@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from typing import Any
 
+import numpy as np
 import pandas as pd
 
 from emulant import columns as col
@@ -173,6 +174,8 @@ def positivity(pos: dict, protocol: Protocol, weights: pd.DataFrame | None) -> d
         hidden = dc.suppress_cells(counts, m, True)
         heights = [dc.masked_height(c, m) if h else c for c, h in zip(counts, hidden, strict=True)]
         hist.append({"name": a, "heights": heights, "hidden": hidden})
+    prim_est = protocol.analysis.primary.estimand
+    weighted = _weighted_bins(weights, bins.get("edges") or [], arms, prim_est, hist, m)
     ext = pos.get("extreme") or {}
     wrows = []
     for est, w in (pos.get("weights") or {}).items():
@@ -207,6 +210,26 @@ def positivity(pos: dict, protocol: Protocol, weights: pd.DataFrame | None) -> d
                               else str(d) for d in model.get("dropped") or []]},
         "edges": [float(x) for x in bins.get("edges") or []],
         "hist": hist,
+        "weighted": weighted,
+        "weighted_title": f"after {prim_est} weighting",
         "weights_file": weights is not None,
     }
 
+
+
+def _weighted_bins(weights: pd.DataFrame | None, edges: list, arms: list[str], estimand: str,
+                   hist: list[dict], m: int) -> list[dict]:
+    """Each arm's sum of ``estimand`` weights per propensity bin (from ``weights.parquet``);
+    a bin hidden in the unweighted counts is drawn hatched, rounded up to a multiple of ``m``."""
+    wcol = col.weight(estimand)
+    if weights is None or len(edges) < 2 or wcol not in weights or "propensity" not in weights:
+        return []
+    out = []
+    for a, h in zip(arms, hist, strict=True):
+        g = weights[weights["arm"].astype(str) == a]
+        mass, _ = np.histogram(g["propensity"].to_numpy(float), bins=np.asarray(edges, float),
+                               weights=g[wcol].to_numpy(float))
+        out.append({"name": a, "hidden": h["hidden"],
+                    "heights": [dc.masked_height(v, m) if hid else float(v)
+                                for v, hid in zip(mass, h["hidden"], strict=True)]})
+    return out

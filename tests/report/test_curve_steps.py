@@ -40,9 +40,9 @@ def test_no_step_pools_fewer_than_min_cell(counts, min_cell, cut):
     steps = pooled_steps(days, at_risk, events, min_cell)
     drawn = [i for i, _ in steps]
     assert drawn == sorted(drawn)
-    for (i, pooled), (j, _) in zip(steps[:-1], steps[1:], strict=True):
+    for (i, _), (j, pooled) in zip(steps[:-1], steps[1:], strict=True):
         between = sum(n for d, n in events.items() if days[i] < d <= days[j])
-        assert between >= min_cell
+        assert between == pooled >= min_cell
     assert all(p >= min_cell for _, p in steps[1:])
     assert all(at_risk[i] >= min_cell for i in drawn)
 

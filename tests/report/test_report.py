@@ -160,7 +160,7 @@ def write_results(d: Path, with_outcomes: bool = True) -> None:
                           "ess": {"class_a": 26.5, "class_b": 27.1}, "truncated": False}
                     for est in ("ATE", "ATT")},
         "model": {"converged": True, "penalized": False, "warnings": [],
-                  "columns": ["age", "region[south]", "region[east]", "prior_mi", "lab"]},
+                  "columns": ["age", "region: south", "region: east", "prior_mi", "lab"]},
     }))
     if not with_outcomes:
         return
