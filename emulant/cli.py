@@ -252,6 +252,19 @@ def cmd_schema(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_pdf(args: argparse.Namespace) -> int:
+    """``emulant pdf``: the report printed to PDF; exit 2 with a clear message without Chromium."""
+    from emulant.report.pdf import PdfError, html_to_pdf
+
+    try:
+        out = html_to_pdf(args.report, args.out)
+    except PdfError as exc:
+        _problems("emulant pdf", [str(exc)])
+        return EXIT_PROBLEMS
+    print(f"Wrote {out}")
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="emulant",
@@ -317,6 +330,15 @@ def build_parser() -> argparse.ArgumentParser:
                                     "editor that reads it completes keys and flags errors. "
                                     "Every key is described in docs/protocol.md.")
     sc.set_defaults(func=cmd_schema)
+
+    pd_ = sub.add_parser("pdf", help="print a rendered report to PDF with headless Chromium",
+                         description="Print REPORT.html to PDF through headless Chromium (A4, a "
+                                     "page per section, page numbers; folded parts opened). "
+                                     "Chromium is looked for as chromium, chromium-browser or "
+                                     "google-chrome on PATH, or $EMULANT_CHROMIUM.")
+    pd_.add_argument("report", metavar="REPORT.html", help="a report written by the workflow")
+    pd_.add_argument("--out", metavar="FILE", help="the PDF to write (default: beside the report)")
+    pd_.set_defaults(func=cmd_pdf)
     return parser
 
 

@@ -20,6 +20,8 @@ import pandas as pd
 import pytest
 import yaml
 
+from emulant.report.pdf import find_chromium
+
 ROOT = Path(__file__).resolve().parents[1]
 SNAKEFILE = ROOT / "Snakefile"
 pytestmark = pytest.mark.slow
@@ -105,6 +107,32 @@ def test_changed_extract_is_named_in_the_report(workdir):
     html = (workdir / "results" / _study(workdir) / "report.html").read_text()
     assert "since the previous run" in html.lower()
     assert "deaths" in html
+
+
+@pytest.mark.skipif(find_chromium() is None, reason="chromium not installed")
+def test_demo_report_prints_to_pdf(workdir, tmp_path):
+    # emulant pdf on the demo report: a page break before every section (so at least one page
+    # per section), page numbers in the margin, and every section heading in the PDF's text
+    # (read back with pypdf, an outside PDF reader).
+    from pypdf import PdfReader
+
+    html = (workdir / "results" / _study(workdir) / "report.html").read_text()
+    out = tmp_path / "report.pdf"
+    res = subprocess.run([sys.executable, "-m", "emulant.cli", "pdf",
+                          str(workdir / "results" / _study(workdir) / "report.html"),
+                          "--out", str(out)], capture_output=True, text=True, timeout=600)
+    assert res.returncode == 0, res.stderr[-2000:]
+    pages = PdfReader(out).pages
+    headings = re.findall(r'<section id="[^"]+"[^>]*>\s*<h2>([^<]+)</h2>', html)
+    assert len(headings) >= 12
+    assert len(headings) <= len(pages) <= 120
+    text = [" ".join(p.extract_text().split()) for p in pages]
+    assert text[0].startswith(f"page 1 of {len(pages)}") or f"page 1 of {len(pages)}" in text[0]
+    assert f"page {len(pages)} of {len(pages)}" in text[-1]
+    whole = " ".join(text)
+    for h in headings:
+        assert " ".join(h.split()) in whole, h
+    assert "At a glance" in text[0]  # the answer on the first page
 
 
 def test_design_report_holds_no_outcome(workdir):

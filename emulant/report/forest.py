@@ -141,9 +141,13 @@ def forest_figure(rows: Sequence[dict], estimands: Sequence[str], prefix: str = 
             if which == "abs":
                 ax.set_xlabel("risk difference (percentage points)" if abs_measure ==
                               "risk_difference" else "mean difference")
+                ax.set_title("difference, " + ("percentage points" if abs_measure ==
+                                               "risk_difference" else "mean") + " (null 0)",
+                             fontsize=8.5, loc="left")
             else:
                 ax.set_xscale("log")
                 ax.set_xlabel("risk ratio or hazard ratio (log scale)")
+                ax.set_title("ratio, log scale (null 1)", fontsize=8.5, loc="left")
                 lo = min((r["rel"][1] for r in rows if r["rel"] and not math.isnan(r["rel"][1])),
                          default=0.5)
                 hi = max((r["rel"][2] for r in rows if r["rel"] and not math.isnan(r["rel"][2])),

@@ -22,6 +22,7 @@ import pytest
 from emulant import columns as col
 from emulant.protocol import load_protocol
 from emulant.report import build_context, render_report
+from emulant.report.pdf import find_chromium
 
 PROTOCOL = """
 study:
@@ -436,22 +437,36 @@ def test_missing_files_say_not_produced(tmp_path):
     assert "target-trial" in page.ids and "assumptions" in page.ids
 
 
-CHROMIUM = "/usr/bin/chromium"
+CHROMIUM = find_chromium()
+GEOMETRY = """<script>window.addEventListener("load", () => {
+  const o = {};
+  for (const [k, sel] of Object.entries(%s)) {
+    const e = document.querySelector(sel);
+    if (e) { const r = e.getBoundingClientRect(); o[k] = [r.top, r.bottom, r.width]; }
+  }
+  const p = document.createElement("pre"); p.id = "geometry-out";
+  p.textContent = JSON.stringify(o); document.body.appendChild(p);
+});</script>"""
+FIRST_SCREEN = {"glance": "#glance", "answer": "#glance .answer", "checks": "#glance ul.checks",
+                "forest": "#forest"}
 
 
-@pytest.mark.skipif(not (os.path.exists(CHROMIUM) and os.access(CHROMIUM, os.X_OK)),
-                    reason="chromium not installed")
+def _chromium(*args: str, profile: Path) -> subprocess.CompletedProcess:
+    cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu",
+           "--disable-background-networking", "--disable-component-update", "--disable-sync",
+           "--no-first-run", f"--user-data-dir={profile}", "--enable-logging=stderr", "--v=0",
+           *args]
+    return subprocess.run(cmd, capture_output=True, text=True, timeout=180)
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium not installed")
 def test_headless_chromium_renders_without_console_errors(full, tmp_path):
     _, _, html = full
     page = tmp_path / "page.html"
     page.write_text(html, encoding="utf-8")
     png = tmp_path / "page.png"
-    profile = tmp_path / "profile"
-    cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu",
-           "--disable-background-networking", "--disable-component-update", "--disable-sync",
-           "--no-first-run", f"--user-data-dir={profile}", f"--screenshot={png}",
-           "--window-size=1200,4000", "--enable-logging=stderr", "--v=0", page.as_uri()]
-    res = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+    res = _chromium(f"--screenshot={png}", "--window-size=1280,800", page.as_uri(),
+                    profile=tmp_path / "profile")
     assert res.returncode == 0, res.stderr[-2000:]
     assert png.is_file() and png.stat().st_size > 10_000
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
@@ -460,6 +475,29 @@ def test_headless_chromium_renders_without_console_errors(full, tmp_path):
     keep = os.environ.get("EMULANT_KEEP_SCREENSHOT")
     if keep:
         shutil.copy(png, keep)
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium not installed")
+def test_first_screen_holds_the_answer_and_the_forest_plot(full, tmp_path):
+    # Layout measured by the browser at 1280x800: a copy of the page with a measuring script
+    # (the report itself has none), read back with --dump-dom.
+    _, _, html = full
+    probe = tmp_path / "probe.html"
+    probe.write_text(html.replace("</body>", GEOMETRY % json.dumps(FIRST_SCREEN) + "</body>"),
+                     encoding="utf-8")
+    res = _chromium("--window-size=1280,800", "--virtual-time-budget=5000", "--dump-dom",
+                    probe.as_uri(), profile=tmp_path / "profile")
+    assert res.returncode == 0, res.stderr[-2000:]
+    found = re.search(r'<pre id="geometry-out">([^<]*)</pre>', res.stdout)
+    assert found, res.stdout[-500:]
+    box = json.loads(found.group(1))
+    assert set(box) == set(FIRST_SCREEN), box
+    assert 0 <= box["glance"][0] < box["answer"][1] <= 800  # the answer in full
+    assert box["checks"][1] <= 800  # every diagnostic's verdict
+    assert box["forest"][0] <= 800 - 150  # the forest plot starts on the first screen
+    assert box["forest"][2] >= 600  # drawn at a readable width
+    console = [ln for ln in res.stderr.splitlines() if "CONSOLE" in ln and "geometry" not in ln]
+    assert not console, console
 
 
 def test_unreadable_results_file_names_it(tmp_path):
