@@ -83,10 +83,11 @@ def primary_estimate(est: pd.DataFrame | None, protocol: Protocol) -> dict:
         if diff is None:
             out["sentence"] = f"The primary estimate ({spec}) is not in estimates.csv."
             return out
-        means = (f"the mean {name} was {fmt.sig(a1.estimate)} under {s.treated} and "
+        what = f"change in {name} from baseline" if prim.change_from_baseline else name
+        means = (f"the mean {what} at day {prim.at_day} was {fmt.sig(a1.estimate)} under {s.treated} and "
                  f"{fmt.sig(a0.estimate)} under {s.comparator}: "
                  if a1 is not None and a0 is not None else "")
-        out["sentence"] = (f"{where.capitalize()}, by {method}, {means}a difference of "
+        out["sentence"] = (f"{where[0].upper() + where[1:]}, by {method}, {means}a difference of "
                            f"{fmt.sig(diff.estimate)} (95% CI {fmt.ci(diff.ci_low, diff.ci_high)}).")
         out["found"] = True
         return out

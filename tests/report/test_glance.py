@@ -147,3 +147,27 @@ def test_appendices_are_folded(page):
         sec = sec[:sec.index("</section>")]
         assert '<details class="fold">' in sec and "<summary>" in sec
     assert "primary:" in html  # the new key in the protocol as parsed
+
+
+def test_measured_primary_outcome_reads_as_a_mean_difference():
+    # the committed example with a measured primary outcome; invented estimates rows
+    from pathlib import Path
+
+    from emulant.protocol import load_protocol
+    from emulant.report.glance import primary_estimate
+
+    root = Path(__file__).resolve().parents[2]
+    p = load_protocol(root / "config" / "protocols" / "measured-primary.yaml")
+    treated, comparator = p.strategies.treated, p.strategies.comparator
+    base = {"outcome": "marker", "contrast": "intention_to_treat", "estimand": "ATE",
+            "method": "ipw", "horizon_day": None, "comparator": "", "ci_low": None,
+            "ci_high": None}
+    est = pd.DataFrame([{**base, "measure": "mean", "arm": treated, "estimate": -1.25},
+                        {**base, "measure": "mean", "arm": comparator, "estimate": 0.5},
+                        {**base, "measure": "mean_difference", "arm": treated,
+                         "comparator": comparator, "estimate": -1.75, "ci_low": -2.5,
+                         "ci_high": -1.0}])
+    s = primary_estimate(est, p)["sentence"]
+    assert s.startswith("In the whole eligible population (ATE), by inverse probability")
+    assert f"the mean change in marker from baseline at day 365 was −1.25 under {treated}" in s
+    assert "a difference of −1.75 (95% CI −2.50 to −1.00)." in s
