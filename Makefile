@@ -5,7 +5,7 @@ BIN     := $(VENV)/bin
 STAMP   := $(VENV)/.installed
 CORES   ?= 2
 
-.PHONY: demo test bench lint design clean
+.PHONY: demo test test-cluster bench lint design clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
@@ -25,6 +25,11 @@ design: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest
+
+# The workflow through a real single-node SLURM (cluster/single-node-slurm.sh starts it; needs
+# root and the Debian packages slurm-wlm and munge, else the test skips and says why).
+test-cluster: $(STAMP)
+	$(BIN)/python -m pytest -m cluster tests/test_cluster.py
 
 bench: $(STAMP)
 	$(BIN)/python -m bench.run

@@ -9,6 +9,11 @@ validate(config, schema="workflow/schemas/config.schema.yaml")
 
 
 include: "workflow/rules/common.smk"
+
+
+localrules: all, design, archive_report, archive_design  # file copies: never queued on a cluster
+
+
 include: "workflow/rules/synthesize.smk"
 include: "workflow/rules/extract.smk"
 include: "workflow/rules/cohort.smk"

@@ -57,3 +57,39 @@ def bootstrap_chunks(protocol: Protocol, chunks: int | str | None) -> list[str]:
     from emulant.estimation.chunks import chunk_name, chunk_ranges
 
     return [chunk_name(r) for r in chunk_ranges(protocol.analysis.bootstrap.replicates, chunks)]
+
+
+# Per rule: memory MB = base + per_mb * extract MB; minutes = base + per_mb * extract MB, where
+# the extract is about 110 bytes per person in the demo's parquet files (2.2 MB at 20,000
+# persons). Set from build_cohort's measured peak of 1.5 GiB at 1,000,000 persons (README,
+# Performance) and a bootstrap chunk holding the cohort and its person-periods in each of its
+# worker processes, with room to spare; a cluster's accounting may tighten them.
+JOB_SCALE = {  # rule: (mem base, mem per extract MB, minutes base, minutes per extract MB)
+    "synthesize_extract": (1000, 20, 10, 0.1),
+    "check_extract": (1000, 8, 10, 0.05),
+    "build_cohort": (1000, 20, 10, 0.2),
+    "build_periods": (1000, 20, 10, 0.2),
+    "fit_weights": (1000, 16, 10, 0.1),
+    "check_balance": (1000, 16, 10, 0.1),
+    "estimate_point": (1000, 30, 10, 0.2),
+    "bootstrap_chunk": (2000, 40, 15, 0.6),
+    "estimate_effects": (1000, 8, 10, 0.02),
+    "render_report": (1000, 16, 10, 0.1),
+    "archive_report": (500, 0, 5, 0.0),
+}
+BYTES_PER_PERSON = 110
+
+
+def job_size(extract_files: list[str], synthetic_persons: int) -> dict[str, dict[str, int]]:
+    """``{rule: {"mem_mb", "runtime"}}`` for cluster jobs, scaled from the extract's size.
+
+    The size is that of the extract's files, or (the demo extract before it is written) the
+    synthetic person count at about 110 bytes a person. Rules not listed get the archive's.
+    """
+    sizes = [Path(f).stat().st_size for f in extract_files if Path(f).is_file()]
+    mb = sum(sizes) / 1e6 if sizes else synthetic_persons * BYTES_PER_PERSON / 1e6
+    out = {rule: {"mem_mb": int(m0 + m1 * mb), "runtime": int(t0 + t1 * mb)}
+           for rule, (m0, m1, t0, t1) in JOB_SCALE.items()}
+    for rule in ("render_design", "archive_design"):
+        out[rule] = out[rule.replace("design", "report")]
+    return out

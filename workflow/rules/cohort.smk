@@ -8,6 +8,9 @@ rule build_cohort:
         attrition=result("attrition.csv"),
     params:
         duckdb=DUCKDB,
+    resources:
+        mem_mb=mem_mb("build_cohort"),
+        runtime=runtime("build_cohort"),
     log:
         logfile("build_cohort"),
     script:
@@ -24,6 +27,9 @@ rule build_periods:
         periods=result("periods.parquet"),
     params:
         duckdb=DUCKDB,
+    resources:
+        mem_mb=mem_mb("build_periods"),
+        runtime=runtime("build_periods"),
     log:
         logfile("build_periods"),
     script:

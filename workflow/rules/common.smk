@@ -17,6 +17,9 @@ DUCKDB = config.get("duckdb", {})
 WORKERS = config.get("workers", 2)
 BOOTSTRAP_CHUNKS = emulant_paths.bootstrap_chunks(PROTOCOL_PARSED, config.get("bootstrap_chunks"))
 PER_PROTOCOL = PROTOCOL_PARSED.per_protocol  # person-time results only when it is asked for
+# Cluster jobs ask for memory (MB) and time (minutes) scaled from the extract's size; a local
+# run ignores both unless --resources caps them.
+SIZE = emulant_paths.job_size(EXTRACT_FILES, config.get("synthetic", {}).get("persons", 20000))
 
 
 def result(name):
@@ -35,3 +38,11 @@ def job_threads(wildcards, threads):
 def person_time_results():
     """periods.parquet when the protocol asks for per_protocol, else nothing."""
     return [result("periods.parquet")] if PER_PROTOCOL else []
+
+
+def mem_mb(rule):
+    return SIZE[rule]["mem_mb"]
+
+
+def runtime(rule):
+    return SIZE[rule]["runtime"]

@@ -8,6 +8,9 @@ rule estimate_point:
         protocol=PROTOCOL_FILES,
     output:
         point=result("bootstrap/point.json"),
+    resources:
+        mem_mb=mem_mb("estimate_point"),
+        runtime=runtime("estimate_point"),
     log:
         logfile("estimate_point"),
     script:
@@ -29,6 +32,9 @@ rule bootstrap_chunk:
         last="{last}",
         workers=job_threads,
     threads: WORKERS
+    resources:
+        mem_mb=mem_mb("bootstrap_chunk"),
+        runtime=runtime("bootstrap_chunk"),
     log:
         logfile("bootstrap_{first}-{last}"),
     script:
@@ -45,6 +51,9 @@ rule estimate_effects:
         curves=result("curves.csv"),
         bootstrap=result("bootstrap.json"),
         decision=result("decision.csv"),
+    resources:
+        mem_mb=mem_mb("estimate_effects"),
+        runtime=runtime("estimate_effects"),
     log:
         logfile("estimate_effects"),
     script:

@@ -6,6 +6,9 @@ rule check_extract:
         check=result("extract_check.json"),
     params:
         duckdb=DUCKDB,
+    resources:
+        mem_mb=mem_mb("check_extract"),
+        runtime=runtime("check_extract"),
     log:
         logfile("check_extract"),
     script:

@@ -22,6 +22,9 @@ rule render_report:
     params:
         reports=REPORTS,
         design=False,
+    resources:
+        mem_mb=mem_mb("render_report"),
+        runtime=runtime("render_report"),
     log:
         logfile("render_report"),
     script:
@@ -37,6 +40,9 @@ rule archive_report:
         archived=result("archive.json"),
     params:
         reports=REPORTS,
+    resources:
+        mem_mb=mem_mb("archive_report"),
+        runtime=runtime("archive_report"),
     log:
         logfile("archive_report"),
     script:
@@ -58,6 +64,9 @@ rule render_design:
     params:
         reports=REPORTS,
         design=True,
+    resources:
+        mem_mb=mem_mb("render_design"),
+        runtime=runtime("render_design"),
     log:
         logfile("render_design"),
     script:
@@ -73,6 +82,9 @@ rule archive_design:
         archived=result("design_archive.json"),
     params:
         reports=REPORTS,
+    resources:
+        mem_mb=mem_mb("archive_design"),
+        runtime=runtime("archive_design"),
     log:
         logfile("archive_design"),
     script:

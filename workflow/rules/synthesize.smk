@@ -8,6 +8,9 @@ if IS_SYNTHETIC:
         params:
             persons=config.get("synthetic", {}).get("persons", 20000),
             seed=config.get("synthetic", {}).get("seed", 20261201),
+        resources:
+            mem_mb=mem_mb("synthesize_extract"),
+            runtime=runtime("synthesize_extract"),
         log:
             f"{EXTRACT}/synthesize.log",
         script:

@@ -5,6 +5,9 @@ rule fit_weights:
     output:
         weights=result("weights.parquet"),
         positivity=result("positivity.json"),
+    resources:
+        mem_mb=mem_mb("fit_weights"),
+        runtime=runtime("fit_weights"),
     log:
         logfile("fit_weights"),
     script:
@@ -18,6 +21,9 @@ rule check_balance:
         protocol=PROTOCOL_FILES,
     output:
         balance=result("balance.csv"),
+    resources:
+        mem_mb=mem_mb("check_balance"),
+        runtime=runtime("check_balance"),
     log:
         logfile("check_balance"),
     script:
