@@ -6,8 +6,8 @@ import importlib
 import sys
 import time
 
-MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_weights", "bench_effects", "bench_survival",
-           "bench_coverage")
+MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_weights", "bench_effects",
+           "bench_survival", "bench_scale", "bench_coverage")
 
 
 def main(argv: list[str] | None = None) -> int:

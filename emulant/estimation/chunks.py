@@ -34,12 +34,14 @@ REPLICATES_PER_CHUNK = 25  # the default chunk size: a few minutes each at a mil
 
 @dataclass
 class PointEstimate:
-    """The point estimate's rows (estimates.csv without intervals), curve rows and warnings."""
+    """The point estimate's rows (estimates.csv without intervals), curve rows, warnings, and
+    its hazard models' coefficients (outcome -> model -> list), where replicates start from."""
 
     rows: list[dict]
     curves: list[dict]
     warnings: list[str]
     subgroups: list[dict] = field(default_factory=list)  # each level: estimable, reason
+    starts: dict = field(default_factory=dict)  # outcome -> hazard model -> coefficients
 
 
 def default_chunks(replicates: int) -> int:
@@ -82,12 +84,13 @@ def point_to_json(point: PointEstimate) -> str:
     return json.dumps({"rows": [{k: _plain(v) for k, v in r.items()} for r in point.rows],
                        "curves": [{k: _plain(v) for k, v in c.items()} for c in point.curves],
                        "warnings": list(point.warnings),
-                       "subgroups": list(point.subgroups)}) + "\n"
+                       "subgroups": list(point.subgroups), "starts": point.starts}) + "\n"
 
 
 def read_point(path: str | Path) -> PointEstimate:
     d = json.loads(Path(path).read_text(encoding="utf-8"))
-    return PointEstimate(d["rows"], d["curves"], d["warnings"], d.get("subgroups", []))
+    return PointEstimate(d["rows"], d["curves"], d["warnings"], d.get("subgroups", []),
+                         d.get("starts", {}))
 
 
 def write_run(fh, run: BootstrapRun) -> None:

@@ -83,16 +83,19 @@ def estimate_sample(sample: AnalysisSample, progress: Progress | None = None
 
 
 def replicate_estimates(cohort: pd.DataFrame, protocol: Protocol, design: Any, X: np.ndarray,
-                        freq: np.ndarray, levels: tuple[LevelAnalysis, ...] = ()
-                        ) -> tuple[list[dict], list[dict]]:
+                        freq: np.ndarray, levels: tuple[LevelAnalysis, ...] = (),
+                        starts: dict | None = None) -> tuple[list[dict], list[dict]]:
     """One bootstrap replicate: the whole analysis refitted with frequency weights ``freq``,
     then within each subgroup level of ``levels``.
+
+    ``starts`` (the point estimate's hazard model coefficients) start the whole sample's Newton
+    fits (a subgroup level's start from the crude rate).
 
     A sample whose models warn (e.g. a propensity model that did not converge) fails the
     replicate with that warning as its reason; a level that fails leaves only its own values
     missing in this replicate.
     """
-    sample = build_sample(cohort, protocol, design, X, freq)
+    sample = build_sample(cohort, protocol, design, X, freq, starts)
     if sample.warnings:
         raise SampleError(sample.warnings[0])
     rows, curves = estimate_sample(sample)
@@ -230,7 +233,8 @@ def point_estimate(cohort: pd.DataFrame, protocol: Protocol) -> PointEstimate:
             a.update(estimable=False, reason=reasons[a["subgroup"]])
     for w in point.warnings:
         log.warning("point estimate: %s", w)
-    return PointEstimate(rows, curves, list(point.warnings), account)
+    starts = {o: {k: [float(v) for v in c] for k, c in m.items()} for o, m in point.fitted.items()}
+    return PointEstimate(rows, curves, list(point.warnings), account, starts)
 
 
 def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointEstimate,
@@ -241,7 +245,10 @@ def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointE
     design, X, levels, _ = _prepare(cohort, protocol)
     estimable = {a["subgroup"] for a in point.subgroups if a["estimable"]}
     levels = tuple(lv for lv in levels if lv.level.label in estimable)
-    estimator = partial(replicate_estimates, cohort, protocol, design, X, levels=levels)
+    starts = {o: {k: np.asarray(c, dtype=float) for k, c in m.items()}
+              for o, m in point.starts.items()}
+    estimator = partial(replicate_estimates, cohort, protocol, design, X, levels=levels,
+                        starts=starts)
     return run_bootstrap(estimator, len(cohort), protocol, point.rows, point.curves,
                          workers=workers, progress=progress, start_method=start_method, only=only)
 

@@ -185,11 +185,14 @@ class PooledLogistic:
         lin = (X - self.x_mean_) / self.x_scale_ @ be if X.shape[1] else np.zeros(X.shape[0])
         return lin, self.basis_ @ g, self.basis_ @ (g + al)
 
-    def fit(self, basis, X, a, days, event, freq=None, period_days: int = 1) -> PooledLogistic:
+    def fit(self, basis, X, a, days, event, freq=None, period_days: int = 1,
+            start=None) -> PooledLogistic:
         """Fit on persons at risk on days ``1..days`` with ``event`` on the last of them.
 
         ``basis`` has one row per period of ``period_days`` days; days past the last period
-        are not at risk.
+        are not at risk. ``start``: coefficients to start Newton's method from (a bootstrap
+        replicate starts from the point estimate's ``coef_``, a few iterations from its own
+        optimum); by default the constant hazard of the crude daily rate.
         """
         B = np.asarray(basis, dtype=float)
         K, q = B.shape
@@ -210,7 +213,9 @@ class PooledLogistic:
         data = _Data(B, Z, a, f, days, period_days, y_rows, y_k, y_f)
         rate = y_f.sum() / max(float(f @ days), 1e-300)
         params = np.zeros(2 * q + Z.shape[1])
-        if 0 < rate < 1:
+        if start is not None and np.shape(start) == params.shape and np.all(np.isfinite(start)):
+            params = np.array(start, dtype=float)
+        elif 0 < rate < 1:
             params[:q] = np.linalg.lstsq(B, np.full(K, np.log(rate / (1 - rate))), rcond=None)[0]
         self.n_iter_, self.converged_ = 0, False
         # the blocks' products are small: BLAS threads cost more than they bring (measured)
@@ -309,13 +314,14 @@ def incidence_at(h_out: np.ndarray, h_comp: np.ndarray | None, days,
 
 
 def hazard_models(time, status, a, X, freq, period_days: int, max_days: int,
-                  competing: bool, lost=None) -> dict[str, PooledLogistic]:
+                  competing: bool, lost=None, start=None) -> dict[str, PooledLogistic]:
     """Fit the pooled logistic models of the outcome, competing-event and censoring hazards.
 
     Follow-up runs to day ``max_days`` (:math:`\\lceil` ``max_days`` / P :math:`\\rceil`
     periods). ``lost`` (bool per person, or None for no censoring model) marks the censorings
     the censoring model counts: a loss to follow-up, never the planned end of follow-up
-    (:func:`emulant.estimation.tte.losses`).
+    (:func:`emulant.estimation.tte.losses`). ``start`` maps a model's name to the coefficients
+    its Newton's method starts from (:meth:`PooledLogistic.fit`).
     """
     t = np.minimum(np.asarray(time, dtype=float), max_days)
     s = np.asarray(status, dtype=int)
@@ -326,7 +332,8 @@ def hazard_models(time, status, a, X, freq, period_days: int, max_days: int,
     models = {}
     for name in kinds:
         days, event = days_at_risk(t, s, name, lost)
-        models[name] = PooledLogistic().fit(B, X, a, days, event, freq, period_days)
+        models[name] = PooledLogistic().fit(B, X, a, days, event, freq, period_days,
+                                            start=(start or {}).get(name))
     for name, m in models.items():
         if not m.converged_:
             warnings.warn(NonConvergenceWarning(

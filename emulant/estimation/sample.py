@@ -47,6 +47,10 @@ class AnalysisSample:
     # freq NOT multiplied in.
     censoring: Mapping[str, np.ndarray] = field(default_factory=dict)
     warnings: tuple[str, ...] = ()  # fits that did not converge (a replicate with any fails)
+    # outcome -> hazard model -> coefficients its Newton's method starts from (a replicate
+    # starts from the point estimate's); the sample's own fits are recorded in ``fitted``
+    starts: Mapping[str, Mapping[str, np.ndarray]] = field(default_factory=dict)
+    fitted: dict[str, dict[str, np.ndarray]] = field(default_factory=dict)
 
     @property
     def n(self) -> int:
@@ -118,7 +122,8 @@ def censoring_weights(outcome: MeasuredOutcome, measured: np.ndarray, a: np.ndar
 
 
 def build_sample(cohort: pd.DataFrame, protocol: Protocol, design: Any,
-                 X: np.ndarray | None = None, freq: np.ndarray | None = None) -> AnalysisSample:
+                 X: np.ndarray | None = None, freq: np.ndarray | None = None,
+                 starts: Mapping | None = None) -> AnalysisSample:
     """Fit one replicate: propensity, each estimand's weights and the censoring weights, with ``freq``.
 
     Parameters
@@ -128,6 +133,7 @@ def build_sample(cohort: pd.DataFrame, protocol: Protocol, design: Any,
     design : :class:`emulant.models.propensity.Design`, learned once on the whole cohort.
     X : ``design.transform(cohort)``; computed when None (pass it to avoid recomputing it).
     freq : non-negative integer frequency weights; ones when None (the point estimate).
+    starts : outcome -> hazard model -> starting coefficients (the point estimate's).
 
     Raises
     ------
@@ -163,4 +169,5 @@ def build_sample(cohort: pd.DataFrame, protocol: Protocol, design: Any,
         if not ok:
             warnings.append("censoring model not converged")
         censoring[outcome.measure] = r
-    return AnalysisSample(cohort, protocol, X, cols, a, freq, e, weights, censoring, tuple(warnings))
+    return AnalysisSample(cohort, protocol, X, cols, a, freq, e, weights, censoring, tuple(warnings),
+                          dict(starts or {}))

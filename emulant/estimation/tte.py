@@ -215,8 +215,11 @@ def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict
 
     need_models = "standardization" in methods or "doubly_robust" in methods
     lost = losses(c.cohort, outcome, c.f, c.max_days) if an.censoring_weights else None
-    models = (hazard_models(c.time, c.status, c.a, c.X, c.f, c.P, c.max_days, c.competing, lost)
+    models = (hazard_models(c.time, c.status, c.a, c.X, c.f, c.P, c.max_days, c.competing, lost,
+                            start=sample.starts.get(outcome))
               if need_models or ("ipw" in methods and an.censoring_weights) else None)
+    if models:  # the point estimate's coefficients start every replicate's fits
+        sample.fitted[outcome] = {k: m.coef_ for k, m in models.items()}
     days = np.concatenate([c.grid, np.asarray(c.horizons, dtype=float)])
     incidence = gformula_incidence(models, c.X, days) if need_models else None
     cens = None

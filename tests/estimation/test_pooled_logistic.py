@@ -71,6 +71,30 @@ def test_pooled_logistic_equals_statsmodels_glm_on_person_days():
     assert model.loglik_ == pytest.approx(ref.llf, rel=1e-9)
 
 
+def test_a_warm_start_reaches_the_same_fit_in_fewer_iterations():
+    # A bootstrap replicate starts Newton's method from the point estimate's coefficients: the
+    # same maximum (the likelihood is concave; statsmodels' GLM above checks the maximum itself)
+    # to 1e-6 in the hazards, in fewer iterations than from the crude rate.
+    rng = np.random.default_rng(8)
+    n, K = 3000, 12
+    X = rng.normal(size=(n, 3))
+    a = rng.integers(0, 2, n)
+    t = rng.integers(0, K * P + 1, n).astype(float)
+    s = rng.choice([0, 1, 2], n, p=[0.6, 0.3, 0.1])
+    B = time_basis(K)
+    days, event = days_at_risk(t, s, "outcome")
+    point = PooledLogistic().fit(B, X, a, days, event, None, P)
+    f = rng.multinomial(n, np.full(n, 1 / n))
+    cold = PooledLogistic().fit(B, X, a, days, event, f, P)
+    warm = PooledLogistic().fit(B, X, a, days, event, f, P, start=point.coef_)
+    assert cold.converged_ and warm.converged_
+    assert warm.n_iter_ < cold.n_iter_
+    for arm in (0, 1):
+        np.testing.assert_allclose(warm.predict_hazard(X, arm), cold.predict_hazard(X, arm),
+                                   rtol=1e-6, atol=0)
+    assert warm.loglik_ == pytest.approx(cold.loglik_, rel=1e-12)
+
+
 def test_daily_saturated_gformula_equals_aalen_johansen():
     # fact of the method: with one-day periods, one indicator per day and no covariates, the
     # daily hazards are d_k / n_k (competing: among those without the outcome that day) and the
