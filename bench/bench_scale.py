@@ -4,7 +4,8 @@ where one bootstrap replicate spends its time.
 For each size, in a fresh child process (so each peak memory belongs to that size alone): the
 synthetic extract is written once under ``bench/out/`` (reused), then ``check_extract``,
 ``build_cohort``, ``fit_weights``, the point estimate and one bootstrap replicate (replicate 0,
-one BLAS thread, as a worker runs it) are timed. The point estimate and the replicate are
+one BLAS thread, its hazard models started from the point estimate's coefficients, as a worker
+runs it) are timed. The point estimate and the replicate are
 broken down by outcome into the propensity refit and weights (``build_sample``), each pooled
 logistic model (seconds and Newton iterations), the g-formula curves, the censoring
 probabilities, the Aalen–Johansen curves and the Cox model (functions wrapped with timers for
@@ -112,6 +113,7 @@ def _instrument() -> Timers:
 
 
 def _child(persons: int) -> dict:
+    import numpy as np
     import pandas as pd
     from threadpoolctl import threadpool_limits
 
@@ -148,9 +150,11 @@ def _child(persons: int) -> dict:
     T.t.clear()
     T.iters.clear()
     freq = replicate_freq(len(cohort), protocol.analysis.bootstrap.seed, 0)
+    starts = {o: {k: np.asarray(c, dtype=float) for k, c in m.items()}
+              for o, m in point.starts.items()}  # as bootstrap_replicates passes them
     with threadpool_limits(limits=1):
         t0 = time.perf_counter()
-        effects.replicate_estimates(cohort, protocol, design, X, freq)
+        effects.replicate_estimates(cohort, protocol, design, X, freq, starts=starts)
         sec["one replicate"] = time.perf_counter() - t0
     out = {"persons": persons, "cohort": len(cohort), "seconds": sec,
            "point": {f"{o} | {p}": v for (o, p), v in parts_point.items()},
