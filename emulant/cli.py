@@ -53,21 +53,27 @@ def _settings(args: argparse.Namespace) -> dict[str, Any]:
     return s
 
 
-def _print_check(result: Mapping[str, Any]) -> None:
+def _print_check(result: Mapping[str, Any], min_cell: int) -> None:
+    """The check as the terminal may show it (the disclosure rule: no count below ``min_cell``,
+    dates by month, no person identifier)."""
     import pandas as pd
 
-    rows = [{"table": t, "file": Path(v["file"]).name, "rows": v["rows"],
-             "first date": v["date_min"] or "", "last date": v["date_max"] or ""}
+    from emulant import disclosure as dc
+
+    rows = [{"table": t, "file": Path(v["file"]).name, "rows": dc.show_count(v["rows"], min_cell),
+             "dates (month)": dc.month_range(v["date_min"], v["date_max"])}
             for t, v in result["tables"].items()]
-    print(f"Extract {result['extract']}: {len(rows)} table(s), person_id as {result['person_id_type']}")
+    print(f"Extract {dc.shown_path(result['extract'])}: {len(rows)} table(s), "
+          f"person_id as {result['person_id_type']}")
     print(pd.DataFrame(rows).to_string(index=False))
     excluded = {t: v for t, v in result["implausible"].items() if v["before_birth"] or v["after_death"]}
     if excluded:
         print("\nRows dated before birth or after death (excluded from the analysis):")
         for t, v in excluded.items():
-            ex = "; ".join(f"person_id {e['person_id']} on {e['date']} ({e['reason'].replace('_', ' ')})"
-                           for e in v["examples"])
-            print(f"  {t}: {v['before_birth']} before birth, {v['after_death']} after death; e.g. {ex}")
+            print(f"  {t}: {dc.show_count(v['before_birth'], min_cell)} before birth, "
+                  f"{dc.show_count(v['after_death'], min_cell)} after death")
+        print(f"  (examples are person-level: written only with --save-check, to its folder's "
+              f"{dc.PERSON_LEVEL_DIR}/)")
     _print_warnings(result.get("warnings", []))
 
 
@@ -99,10 +105,19 @@ def cmd_check(args: argparse.Namespace) -> int:
     if failed:
         return EXIT_PROBLEMS
     if args.save_check:
-        Path(args.save_check).parent.mkdir(parents=True, exist_ok=True)
-        Path(args.save_check).write_text(json.dumps(result, indent=2, default=str) + "\n")
-    print(f"Protocol {args.protocol}: study {protocol.study.id}")
-    _print_check(result)
+        from emulant import disclosure as dc
+        from emulant.audit import shareable
+
+        out = Path(args.save_check)
+        (out.parent / dc.PERSON_LEVEL_DIR).mkdir(parents=True, exist_ok=True)
+        (out.parent / dc.PERSON_LEVEL_DIR / "extract_examples.json").write_text(
+            json.dumps(shareable.person_level_check(result), indent=2, default=str) + "\n")
+        out.write_text(json.dumps(shareable.shareable_check(result), indent=2, default=str) + "\n")
+    from emulant import disclosure as dc
+
+    print(f"Protocol {dc.shown_path(args.protocol)}: study {protocol.study.id}")
+    m = protocol.report.min_cell
+    _print_check(result, m)
 
     def steps():
         from emulant.cohort import CohortError, build_cohort
@@ -123,11 +138,13 @@ def cmd_check(args: argparse.Namespace) -> int:
     if error is not None:
         _problems("eligibility", getattr(error, "problems", None) or [str(error)])
         return EXIT_PROBLEMS
-    print("\nAttrition (eligibility steps in order):")
-    print(cohort.attrition.to_string(index=False))
+    from emulant.audit import shareable
+
+    print(f"\nAttrition (eligibility steps in order; counts below {m} shown as <{m}):")
+    print(shareable.shareable_attrition(cohort.attrition, m).to_string(index=False))
     if deviations is not None:
         print("\nDeviations from the sustained strategies within follow-up, per arm:")
-        print(deviations.to_string(index=False))
+        print(shareable.shareable_deviations(deviations, m).to_string(index=False))
     from emulant.cohort.covariates import single_value_covariates
 
     _print_warnings(single_value_covariates(protocol, cohort.cohort))
@@ -184,7 +201,7 @@ class _ConfigError(Exception):
 
 
 def latest_report(reports_dir: Path) -> str | None:
-    """The ``report`` path of the ledger's last line, or None when there is no ledger yet."""
+    """The report of the ledger's last line, or None when there is no ledger yet."""
     ledger = reports_dir / "ledger.jsonl"
     if not ledger.is_file():
         return None
@@ -192,7 +209,9 @@ def latest_report(reports_dir: Path) -> str | None:
     if not lines:
         return None
     entry = json.loads(lines[-1])
-    return str(entry["report"]) if isinstance(entry, dict) and entry.get("report") else None
+    if not isinstance(entry, dict) or not entry.get("report"):
+        return None
+    return str(reports_dir / entry["report"])  # relative to the ledger's folder (older lines: absolute)
 
 
 def cmd_where(args: argparse.Namespace) -> int:

@@ -87,28 +87,34 @@ def synthesize_extract(input: Any, output: Any, params: Any) -> None:
 def check_extract(input: Any, output: Any, params: Any) -> None:
     from emulant.extract import check_extract as check
 
+    from emulant.audit import shareable
+
     protocol = load_protocol(_protocol_path(input))
     report = check(_extract_dir(input), protocol, dict(params.duckdb))
     for w in report.get("warnings", []):
         log.warning("%s", w)
-    write_json(output.check, report)
+    write_json(output.examples, shareable.person_level_check(report))
+    write_json(output.check, shareable.shareable_check(report))
 
 
 def build_cohort(input: Any, output: Any, params: Any) -> None:
+    from emulant.audit import shareable
     from emulant.cohort import build_cohort as build
     from emulant.extract import open_extract
 
     protocol = load_protocol(_protocol_path(input))
     extract = open_extract(_extract_dir(input), protocol, dict(params.duckdb))
     res = build(extract, protocol)
-    log.info("attrition:\n%s", res.attrition.to_string(index=False))
+    m = protocol.report.min_cell
+    shown = shareable.shareable_attrition(res.attrition, m)
+    log.info("attrition (as the report shows it):\n%s", shown.to_string(index=False))
     cohort = res.cohort
     if protocol.per_protocol:  # stop, switch and deviation days (CONTRACTS §5b)
         from emulant.cohort.person_time import add_deviations, deviation_counts
 
         cohort = add_deviations(extract, protocol, cohort)
         log.info("deviations within follow-up:\n%s",
-                 deviation_counts(cohort, protocol).to_string(index=False))
+                 shareable.shareable_deviations(deviation_counts(cohort, protocol), m).to_string(index=False))
     write_csv(output.attrition, res.attrition)
     write_parquet(output.cohort, cohort)
 
@@ -194,7 +200,8 @@ def render_report(input: Any, output: Any, params: Any) -> None:
     kind = "design" if params.design else "analysis"
     results = Path(input.check).parent
     manifest = provenance.build_manifest(protocol, results, params.reports, kind=kind)
-    comparison = provenance.compare_with_previous(params.reports, manifest, results)
+    comparison = provenance.compare_with_previous(params.reports, manifest, results,
+                                                  protocol.report.min_cell)
     with atomic(output.report) as tmp:
         render(results, protocol, tmp, manifest=manifest, comparison=comparison,
                design=bool(params.design))
@@ -204,9 +211,10 @@ def render_report(input: Any, output: Any, params: Any) -> None:
 def archive_report(input: Any, output: Any, params: Any) -> None:
     from emulant.audit import provenance
 
+    protocol = load_protocol(_protocol_path(input))
     entry = provenance.archive_run(input.manifest, input.report, Path(input.check).parent,
-                                   params.reports)
-    log.info("archived to %s", entry["folder"])
+                                   params.reports, protocol.report.min_cell)
+    log.info("archived to %s/%s", params.reports, entry["folder"])
     write_json(output.archived, entry)
 
 

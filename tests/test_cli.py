@@ -48,17 +48,43 @@ def test_usage_error_exits_2(capsys):
 def test_check_valid_extract_prints_attrition(tmp_path, capsys):
     _need("emulant.cohort", "the eligibility steps of `emulant check` live there")
     ex = write_extract(tmp_path / "extract")
-    pp = write_protocol(tmp_path / "proto")
+    d = protocol_dict()
+    d["report"] = {"min_cell": 1}  # nothing is suppressed: the exact attrition is printed
+    pp = write_protocol(tmp_path / "proto", d)
     saved = tmp_path / "out" / "extract_check.json"
     rc, out, err = _run(capsys, "check", "--extract", str(ex), "--protocol", str(pp), "--save-check", str(saved))
     assert rc == 0, err
     assert "Attrition" in out and "Traceback" not in out + err
     lines = out[out.index("Attrition"):].splitlines()[2:]
-    got = [(ln.split()[0], int(ln.split()[-2])) for ln in lines if ln.strip()]
+    rows = [ln.split() for ln in lines if ln.strip()]  # the first step has no excluded count
+    got = [(r[0], int(r[-1] if i == 0 else r[-2])) for i, r in enumerate(rows)]
     assert got == EXPECTED_ATTRITION  # hand computation
     assert "Warnings" in out and "coverage_before_days" in out
     check = json.loads(saved.read_text())
     assert check["tables"]["persons"]["rows"] == 8
+    assert str(tmp_path) not in saved.read_text()  # paths relative (disclosure rule)
+
+
+def test_check_output_follows_the_disclosure_rule(tmp_path, capsys):
+    """With min_cell 5 every count of the 8-person extract's attrition is below 5 or recovers one:
+    the terminal shows none of them, no birth date and no person identifier's date."""
+    _need("emulant.cohort", "the eligibility steps of `emulant check` live there")
+    ex = write_extract(tmp_path / "extract")
+    d = protocol_dict()
+    d["report"] = {"min_cell": 5}
+    pp = write_protocol(tmp_path / "proto", d)
+    saved = tmp_path / "out" / "extract_check.json"
+    rc, out, err = _run(capsys, "check", "--extract", str(ex), "--protocol", str(pp), "--save-check", str(saved))
+    assert rc == 0, err
+    lines = out[out.index("Attrition"):].splitlines()[2:]
+    shown = [ln.split()[-2:] for ln in lines if ln.strip()]
+    # persons 8 is shown (8 >= 5), the rest is <5 or suppressed so that no exclusion is recovered
+    assert shown[0][-1] == "8"
+    assert all(c in ("<5", "—", "0") or int(c) >= 5 for row in shown[1:] for c in row)
+    assert "1950-12-12" not in out and "1950-12" in out  # oldest birth date by month only
+    assert str(tmp_path) not in out + err
+    person_level = saved.parent / "person_level" / "extract_examples.json"
+    assert person_level.is_file() and "person-level" in person_level.read_text()
 
 
 def test_check_warns_of_a_covariate_with_a_single_value(tmp_path, capsys):

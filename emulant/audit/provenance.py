@@ -10,6 +10,7 @@ from __future__ import annotations
 import datetime as dt
 import difflib
 import json
+import os
 import platform
 import shutil
 import subprocess
@@ -20,6 +21,8 @@ from typing import Any
 import pandas as pd
 
 from emulant import __version__
+from emulant import disclosure as dc
+from emulant.audit import shareable
 from emulant.extract import sha256_file
 from emulant.protocol import Protocol
 from emulant.protocol.as_input import as_input
@@ -29,8 +32,13 @@ PACKAGES = ("emulant", "snakemake", "duckdb", "pandas", "pyarrow", "numpy", "sci
 RESULT_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weights.parquet",
                 "positivity.json", "balance.csv", "estimates.csv", "curves.csv", "bootstrap.json",
                 "periods.parquet", "decision.csv")
-ARCHIVED = ("report.html", "manifest.json", "estimates.csv", "curves.csv", "attrition.csv",
-            "balance.csv", "positivity.json", "bootstrap.json", "extract_check.json", "decision.csv")
+# What leaves the run folder, each in its shared form (emulant.audit.shareable). The curves (event
+# days), the balance table (SMDs that a suppressed count would give back) and the person-level
+# files stay in results/<study>/ only.
+ARCHIVED = ("report.html", "manifest.json", "estimates.csv", "attrition.csv", "positivity.json",
+            "bootstrap.json", "extract_check.json", "decision.csv")
+DESIGN_ARCHIVED = ("attrition.csv", "positivity.json", "extract_check.json")
+PARTIAL = "partial-"
 ESTIMATE_KEY = ["outcome", "contrast", "estimand", "method", "measure", "horizon_day", "arm", "comparator",
                 "subgroup"]
 
@@ -87,13 +95,17 @@ def build_manifest(protocol: Protocol, results_dir: str | Path, reports_dir: str
     results = Path(results_dir)
     check_path = results / "extract_check.json"
     check = json.loads(check_path.read_text()) if check_path.is_file() else {}
-    inputs = [{"table": name, "path": t.get("file"), "sha256": t.get("sha256"), "rows": t.get("rows")}
+    m = protocol.report.min_cell
+    extract = check.get("extract")
+    inputs = [{"table": name, "path": dc.shown_path(t.get("file"), extract=extract),
+               "sha256": t.get("sha256"), "rows": dc.shared_count(t.get("rows"), m)}
               for name, t in sorted(check.get("tables", {}).items())]
     for c in protocol.concepts.values():
         if c.codes_file:
             f = Path(c.codes_file)
             f = f if f.is_absolute() else protocol.base_dir / f
-            inputs.append({"table": f"codelist:{c.name}", "path": str(f), "sha256": sha256_file(f), "rows": len(c.codes)})
+            inputs.append({"table": f"codelist:{c.name}", "path": dc.shown_path(f), "sha256": sha256_file(f),
+                           "rows": len(c.codes)})
     produced = {name: results / name for name in RESULT_FILES if (results / name).is_file()}
     if kind == "design":
         produced = {k: v for k, v in produced.items()
@@ -111,7 +123,7 @@ def build_manifest(protocol: Protocol, results_dir: str | Path, reports_dir: str
         "python": platform.python_version(),
         "platform": platform.platform(),
         "packages": package_versions(),
-        "protocol": {"path": protocol.path, "sha256": protocol.sha256, "text": protocol.text,
+        "protocol": {"path": dc.shown_path(protocol.path), "sha256": protocol.sha256, "text": protocol.text,
                      "as_parsed": as_input(protocol)},
         "protocol_sha256": protocol.sha256,
         "inputs": inputs,
@@ -130,8 +142,12 @@ def _previous(reports_dir: str | Path, manifest: dict[str, Any]) -> Path | None:
 
 
 def compare_with_previous(reports_dir: str | Path, manifest: dict[str, Any],
-                          results_dir: str | Path) -> dict[str, Any] | None:
-    """What changed since the previous archived run of the same kind, or None when there is none."""
+                          results_dir: str | Path, min_cell: int) -> dict[str, Any] | None:
+    """What changed since the previous archived run of the same kind, or None when there is none.
+
+    Counts are compared in the form each run showed them (:mod:`emulant.audit.shareable`), and a
+    change is given only as :func:`emulant.disclosure.count_changes` allows.
+    """
     folder = _previous(reports_dir, manifest)
     if folder is None:
         return None
@@ -146,18 +162,24 @@ def compare_with_previous(reports_dir: str | Path, manifest: dict[str, Any],
                            "changed_inputs": changed, "attrition": [], "estimates": [], "protocol_diff": None}
     results = Path(results_dir)
     if (folder / "attrition.csv").is_file() and (results / "attrition.csv").is_file():
-        a0 = pd.read_csv(folder / "attrition.csv")[["step", "remaining"]]
-        a1 = pd.read_csv(results / "attrition.csv")[["step", "remaining"]]
-        m = a1.merge(a0, on="step", how="left", suffixes=("_current", "_previous"))
-        gone = a0[~a0.step.isin(a1.step)].rename(columns={"remaining": "remaining_previous"})
-        m = pd.concat([m, gone.assign(remaining_current=pd.NA)], ignore_index=True)
-        out["attrition"] = [{"step": r.step, "previous": _int(r.remaining_previous), "current": _int(r.remaining_current)}
-                            for r in m.itertuples()]
+        a0, a1 = (shareable.shareable_attrition(pd.read_csv(f, dtype={"remaining": object, "excluded": object},
+                                                            keep_default_na=False), min_cell)
+                  for f in (folder / "attrition.csv", results / "attrition.csv"))
+        a0 = a0.assign(remaining=[_exact(x) for x in a0.remaining])
+        a1 = a1.assign(remaining=[_exact(x) for x in a1.remaining])
+        prev_by = dict(zip(a0.step, a0.remaining, strict=True))
+        steps = list(a1.step) + [s for s in a0.step if s not in set(a1.step)]
+        cur_by = dict(zip(a1.step, a1.remaining, strict=True))
+        rows = dc.count_changes([prev_by.get(s) for s in steps], [cur_by.get(s) for s in steps], min_cell)
+        out["attrition"] = [{"step": s, **r} for s, r in zip(steps, rows, strict=True)]
     if manifest.get("kind") != "design" and (folder / "estimates.csv").is_file() and (results / "estimates.csv").is_file():
-        e0 = pd.read_csv(folder / "estimates.csv", keep_default_na=False, na_values=[""])
-        e1 = pd.read_csv(results / "estimates.csv", keep_default_na=False, na_values=[""])
-        for frame in (e0, e1):  # a run before subgroups existed: every row is the whole cohort's
-            if "subgroup" not in frame.columns:
+        e0, e1 = (shareable.shareable_estimates(pd.read_csv(f, keep_default_na=False, na_values=[""]), min_cell)
+                  for f in (folder / "estimates.csv", results / "estimates.csv"))
+        for frame in (e0, e1):
+            frame["estimate"] = pd.to_numeric(frame["estimate"], errors="coerce")
+            if "se" in frame:
+                frame["se"] = pd.to_numeric(frame["se"], errors="coerce")
+            if "subgroup" not in frame.columns:  # a run before subgroups existed: the whole cohort's
                 frame["subgroup"] = pd.NA
         key = [k for k in ESTIMATE_KEY if k in e0.columns and k in e1.columns]
         join = [f"_key_{k}" for k in key]
@@ -167,7 +189,7 @@ def compare_with_previous(reports_dir: str | Path, manifest: dict[str, Any],
         rows = []
         for r in m.to_dict("records"):
             before_value = r.get("estimate_previous")
-            shift = r["estimate"] - before_value if pd.notna(before_value) else None
+            shift = r["estimate"] - before_value if pd.notna(before_value) and pd.notna(r["estimate"]) else None
             se = r.get("se")
             rows.append({**{k: None if pd.isna(r[k]) else r[k] for k in key},
                          "previous": None if pd.isna(before_value) else before_value, "current": r["estimate"],
@@ -182,39 +204,71 @@ def compare_with_previous(reports_dir: str | Path, manifest: dict[str, Any],
     return out
 
 
-def _int(x: Any) -> int | None:
-    return None if pd.isna(x) else int(x)
+def _exact(x: Any) -> str:
+    """A shown cell as text; a whole number without thousands separators."""
+    v = dc.parse_shown(x)
+    return str(v) if v is not None else str(x)
+
+
+def _write_shareable(name: str, src: Path, dst: Path, min_cell: int) -> None:
+    """Write ``src`` to ``dst`` in its shared form (:mod:`emulant.audit.shareable`)."""
+    if name == "extract_check.json":
+        dst.write_text(json.dumps(shareable.shareable_check(json.loads(src.read_text()), min_cell),
+                                  indent=2, default=str) + "\n", encoding="utf-8")
+    elif name == "positivity.json":
+        dst.write_text(json.dumps(shareable.shareable_positivity(json.loads(src.read_text()), min_cell),
+                                  indent=2, default=str) + "\n", encoding="utf-8")
+    elif name == "attrition.csv":
+        df = pd.read_csv(src, dtype={"remaining": object, "excluded": object}, keep_default_na=False)
+        shareable.shareable_attrition(df, min_cell).to_csv(dst, index=False, lineterminator="\n")
+    elif name == "estimates.csv":
+        df = pd.read_csv(src, keep_default_na=False, na_values=[""])
+        shareable.shareable_estimates(df, min_cell).to_csv(dst, index=False, lineterminator="\n",
+                                                           float_format="%.10g")
+    else:
+        shutil.copy2(src, dst)
 
 
 def archive_run(manifest_path: str | Path, report_path: str | Path, results_dir: str | Path,
-                reports_dir: str | Path) -> dict[str, Any]:
-    """Copy the report, its manifest and the results to ``REPORTS/<stamp>/``; append the ledger."""
+                reports_dir: str | Path, min_cell: int) -> dict[str, Any]:
+    """Put the report, its manifest and the shared form of the results in ``REPORTS/<stamp>/``;
+    append one line to the ledger.
+
+    The folder is filled under a hidden temporary name and renamed into place whole, so an
+    interrupted run leaves no half-written archive (a leftover temporary folder is removed by the
+    next archive); the ledger line is written with one ``write`` and flushed to disk.
+    """
     manifest = json.loads(Path(manifest_path).read_text())
     reports = Path(reports_dir)
     folder = reports / manifest["stamp"]
     if folder.exists():
         raise FileExistsError(f"archive folder {folder} exists already; archives are never overwritten")
-    folder.mkdir(parents=True)
-    shutil.copy2(report_path, folder / "report.html")
-    shutil.copy2(manifest_path, folder / "manifest.json")
+    reports.mkdir(parents=True, exist_ok=True)
+    for stale in reports.glob(f".{PARTIAL}*"):
+        shutil.rmtree(stale, ignore_errors=True)
+    tmp = reports / f".{PARTIAL}{manifest['stamp']}"
+    tmp.mkdir()
+    shutil.copy2(report_path, tmp / "report.html")
+    shutil.copy2(manifest_path, tmp / "manifest.json")
     results = Path(results_dir)
     copied = ["report.html", "manifest.json"]
-    if manifest.get("kind") != "design":
-        for name in ARCHIVED[2:]:
-            if (results / name).is_file():
-                shutil.copy2(results / name, folder / name)
-                copied.append(name)
-    else:
-        for name in ("attrition.csv", "balance.csv", "positivity.json", "extract_check.json"):
-            if (results / name).is_file():
-                shutil.copy2(results / name, folder / name)
-                copied.append(name)
+    names = ARCHIVED[2:] if manifest.get("kind") != "design" else DESIGN_ARCHIVED
+    for name in names:
+        if (results / name).is_file():
+            _write_shareable(name, results / name, tmp / name, min_cell)
+            copied.append(name)
+    os.replace(tmp, folder)
     entry = {"stamp": manifest["stamp"], "kind": manifest.get("kind", "analysis"),
              "study_id": manifest.get("study_id"), "finished": manifest.get("finished"),
-             "folder": str(folder), "report": str(folder / "report.html"),
+             "folder": manifest["stamp"], "report": f"{manifest['stamp']}/report.html",
              "protocol_sha256": manifest.get("protocol_sha256"),
              "inputs": {i["table"]: i["sha256"] for i in manifest.get("inputs", [])},
              "previous_stamp": manifest.get("previous_stamp"), "files": copied}
-    with open(reports / "ledger.jsonl", "a", encoding="utf-8") as f:
-        f.write(json.dumps(entry, sort_keys=True) + "\n")
+    line = (json.dumps(entry, sort_keys=True) + "\n").encode("utf-8")
+    fd = os.open(reports / "ledger.jsonl", os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        os.write(fd, line)
+        os.fsync(fd)
+    finally:
+        os.close(fd)
     return entry

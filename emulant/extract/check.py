@@ -16,6 +16,7 @@ from typing import Any
 
 import duckdb
 
+from emulant.disclosure import month
 from emulant.extract.tables import (
     DATE_COLUMNS,
     EVENT_REQUIRED,
@@ -343,7 +344,7 @@ def _end_warnings(protocol: Protocol, last_dates: dict[str, Any]) -> list[str]:
         last = last_dates.get(table)
         if last is not None and last < end:
             out.append(f"follow_up.administrative_end {end} is later than the last record of table "
-                       f"{table} ({last}); the extract may be incomplete there")
+                       f"{table} (in {month(last)}); the extract may be incomplete there")
     return out
 
 

@@ -1,8 +1,8 @@
 """Positivity diagnostics: the content of ``positivity.json`` (CONTRACTS §4).
 
 The propensity distribution by arm (20 equal bins on [0, 1], for the report's overlap figure),
-the c-statistic, the share of persons with extreme scores, and per estimand the largest
-weights, the share of the total weight carried by the top 1% and Kish's effective sample size.
+the c-statistic, the share of persons with extreme scores, and per estimand the quantiles of the
+weights (no individual weight: the disclosure rule of :mod:`emulant.disclosure`), the share of the total weight carried by the top 1% and Kish's effective sample size.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ from emulant.models.weights import kish_ess
 #: Extreme propensity thresholds: common practice, no single source.
 EXTREME_LOW, EXTREME_HIGH = 0.025, 0.975
 N_BINS = 20
-N_LARGEST = 5
+WEIGHT_QUANTILES = (0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
 
 
 def c_statistic(a: np.ndarray, e: np.ndarray) -> float:
@@ -47,6 +47,15 @@ def top_share(w: np.ndarray, share: float = 0.01) -> float:
     return float(w[:k].sum() / tot) if tot > 0 else float("nan")
 
 
+def weight_quantiles(w: np.ndarray) -> dict[str, float]:
+    """The 1, 5, 25, 50, 75, 95 and 99% quantiles of the weights (numpy's linear interpolation)."""
+    w = np.asarray(w, dtype=float)
+    if w.size == 0:
+        return {}
+    return {f"{100 * q:g}%": float(v) for q, v in zip(WEIGHT_QUANTILES, np.quantile(w, WEIGHT_QUANTILES),
+                                                    strict=True)}
+
+
 def positivity_summary(a: np.ndarray, e: np.ndarray, weights: Mapping[str, np.ndarray],
                        arms: Sequence[str], model: Any = None, columns: Sequence[str] = (),
                        truncated: Mapping[str, bool] | None = None) -> dict[str, Any]:
@@ -68,7 +77,7 @@ def positivity_summary(a: np.ndarray, e: np.ndarray, weights: Mapping[str, np.nd
         ``n`` {arm: n}; ``propensity_bins`` {``edges`` (21), ``counts`` {arm: 20 ints}};
         ``c_statistic``; ``extreme`` {``low``, ``high``, ``n``, ``share``} (e below 0.025 or above
         0.975: common practice, no single source); ``weights`` {estimand: {``mean`` {arm},
-        ``min``, ``max``, ``largest`` (top 5), ``top1pct_share``, ``ess`` {arm: Kish ESS},
+        ``quantiles`` {"1%", "5%", ..., "99%": weight}, ``top1pct_share``, ``ess`` {arm: Kish ESS},
         ``truncated``}}; ``model`` {``converged``, ``penalized``, ``warnings``, ``columns``}.
     """
     a = np.asarray(a, dtype=float)
@@ -94,9 +103,7 @@ def positivity_summary(a: np.ndarray, e: np.ndarray, weights: Mapping[str, np.nd
         out["weights"][est] = {
             "mean": {arm: float(w[m].mean()) if m.any() else float("nan")
                      for arm, m in masks.items()},
-            "min": float(w.min()),
-            "max": float(w.max()),
-            "largest": [float(x) for x in np.sort(w)[::-1][:N_LARGEST]],
+            "quantiles": weight_quantiles(w),
             "top1pct_share": top_share(w),
             "ess": {arm: kish_ess(w[m]) for arm, m in masks.items()},
             "truncated": bool((truncated or {}).get(est, False)),

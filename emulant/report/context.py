@@ -45,12 +45,9 @@ DESIGN_OMITS = {"results", "since-previous", "decision", "subgroups"}
 
 def comparison_context(cmp: dict, protocol: Protocol) -> dict:
     """The "since the previous run" section: changed files, attrition then and now, shifts."""
-    min_cell = protocol.report.min_cell
-    att = []
-    for r in cmp.get("attrition") or []:
-        att.append({"step": fmt.text(r.get("step")),
-                    "previous": dc.show_count(r.get("previous"), min_cell),
-                    "current": dc.show_count(r.get("current"), min_cell)})
+    att = [{"step": fmt.text(r.get("step")), "previous": fmt.text(r.get("previous")),
+            "current": fmt.text(r.get("current")), "change": fmt.text(r.get("change"))}
+           for r in cmp.get("attrition") or []]  # already in shown form (disclosure.count_changes)
     est = []
     for r in cmp.get("estimates") or []:
         arms = fmt.text(r.get("arm")) + (f" vs {r['comparator']}" if r.get("comparator") else "")

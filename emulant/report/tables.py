@@ -18,23 +18,26 @@ from emulant.report import disclosure as dc
 from emulant.report import fmt
 
 
+WEIGHT_QUANTILES = ("1%", "50%", "99%")  # shown of positivity.json's quantiles (no single weight)
+
+
 def provenance(check: dict, min_cell: int) -> dict:
     """Input tables with hash, rows and date range; implausible rows excluded; warnings."""
     tables = []
     for name, t in (check.get("tables") or {}).items():
         cols = t.get("columns")
         tables.append({
-            "name": name, "file": fmt.text(t.get("file")), "sha256": fmt.text(t.get("sha256")),
+            "name": name, "file": dc.shown_path(t.get("file"), extract=check.get("extract")), "sha256": fmt.text(t.get("sha256")),
             "rows": dc.show_count(t.get("rows"), min_cell),
             "columns": ", ".join(map(str, cols)) if isinstance(cols, list) else fmt.text(cols),
-            "date_min": fmt.text(t.get("date_min")), "date_max": fmt.text(t.get("date_max")),
+            "dates": dc.month_range(t.get("date_min"), t.get("date_max")),
         })
     implausible = []
     for name, v in (check.get("implausible") or {}).items():
         implausible.append({"table": name,
                             "before_birth": dc.show_count(v.get("before_birth", 0), min_cell),
                             "after_death": dc.show_count(v.get("after_death", 0), min_cell)})
-    return {"extract": fmt.text(check.get("extract")), "tables": tables,
+    return {"extract": dc.shown_path(check.get("extract")), "tables": tables,
             "implausible": implausible, "warnings": [str(w) for w in check.get("warnings") or []]}
 
 
@@ -186,8 +189,7 @@ def positivity(pos: dict, protocol: Protocol, weights: pd.DataFrame | None) -> d
             "mean": [fmt.num(mean.get(a), 3) for a in arms],
             "ess": [fmt.num(ess.get(a), 0) for a in arms],
             "ess_share": [dc.show_percent(ess.get(a), n.get(a), m) for a in arms],
-            "min": fmt.sig(w.get("min")), "max": fmt.sig(w.get("max")),
-            "largest": ", ".join(fmt.sig(x) for x in (w.get("largest") or [])[:5]),
+            "quantiles": [fmt.sig((w.get("quantiles") or {}).get(q)) for q in WEIGHT_QUANTILES],
             "top1pct_share": fmt.num(100 * w["top1pct_share"], 1) + "%"
             if not fmt.missing(w.get("top1pct_share")) else "",
             "truncated": fmt.yesno(w.get("truncated")),

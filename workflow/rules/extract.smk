@@ -4,6 +4,7 @@ rule check_extract:
         protocol=PROTOCOL_FILES,
     output:
         check=result("extract_check.json"),
+        examples=result("person_level/extract_examples.json"),
     params:
         duckdb=DUCKDB,
     resources:

@@ -36,6 +36,7 @@ rule archive_report:
         check=result("extract_check.json"),
         report=result("report.html"),
         manifest=result("manifest.json"),
+        protocol=PROTOCOL_FILES,
     output:
         archived=result("archive.json"),
     params:
@@ -78,6 +79,7 @@ rule archive_design:
         check=result("extract_check.json"),
         report=result("design/report.html"),
         manifest=result("design/manifest.json"),
+        protocol=PROTOCOL_FILES,
     output:
         archived=result("design_archive.json"),
     params:

@@ -11,7 +11,7 @@ from __future__ import annotations
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from emulant.report import disclosure as dc
+from emulant import disclosure as dc
 
 
 def test_show_count_and_percent():
@@ -109,3 +109,22 @@ def test_masked_height_and_grid():
 def test_rule_text_names_min_cell():
     text = dc.rule_text(10)
     assert "1 to 9" in text and "<10" in text and "next smallest" in text
+
+
+def test_count_changes_never_gives_a_small_change():
+    """Then and now: a change below min_cell is shown as such and the previous count withheld;
+    a suppressed count on either side hides the change (common practice, no single source)."""
+    rows = dc.count_changes(["229", "224", "<5", "220", "100"], ["229", "222", "12", "—", "90"], 5)
+    assert rows[0] == {"previous": "229", "current": "229", "change": "none"}
+    assert rows[1] == {"previous": "—", "current": "222", "change": "fewer than 5 fewer"}
+    assert rows[2]["change"] == "—" and rows[3]["change"] == "—"
+    assert rows[4] == {"previous": "100", "current": "90", "change": "-10"}
+
+
+def test_months_and_paths(tmp_path):
+    assert dc.month("1950-12-12") == "1950-12" and dc.month(None) == ""
+    assert dc.month_range("2010-01-05", "2023-12-31") == "2010-01 to 2023-12"
+    f = tmp_path / "data" / "latest" / "persons.csv"
+    assert dc.shown_path(f, project=tmp_path) == "data/latest/persons.csv"
+    assert dc.shown_path(f, project=tmp_path / "elsewhere", extract=f.parent) == "latest/persons.csv"
+    assert dc.shown_path(f, project=tmp_path / "elsewhere") == "persons.csv"
