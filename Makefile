@@ -14,11 +14,12 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 # ARGS passes anything on to snakemake, e.g. make demo ARGS="--config extract=PATH protocol=FILE"
+# `emulant run` recovers from an interrupted run by itself (README "Running unattended") and ends
+# by printing the results and report of the study it ran.
 ARGS    ?=
 
 demo: $(STAMP)
-	$(BIN)/snakemake --cores $(CORES) --scheduler greedy $(ARGS)
-	@$(BIN)/python -m emulant.cli where --config config/config.yaml
+	$(BIN)/python -m emulant.cli run --cores $(CORES) --scheduler greedy $(ARGS)
 
 design: $(STAMP)
 	$(BIN)/snakemake design --cores $(CORES) --scheduler greedy $(ARGS)

@@ -178,17 +178,29 @@ def cmd_synth(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _read_config(path: Path) -> dict[str, Any]:
+def _read_config(items: Sequence[str] | None, configfile: str | None) -> dict[str, Any]:
+    """The run configuration as Snakemake reads it: the config file, then ``KEY=VALUE`` overrides.
+
+    ``--config FILE`` (one item without ``=``) names the file, as before.
+    """
     import yaml
 
+    from emulant.runner import run_config
+
+    items = list(items or [])
+    if len(items) == 1 and "=" not in items[0]:
+        configfile, items = items[0], []
+    path = Path(configfile or "config/config.yaml")
     if not path.is_file():
         raise _ConfigError([f"config file {path} does not exist"])
+    argv = ["--configfile", str(path.resolve())] + (["--config", *items] if items else [])
     try:
-        data = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+        data = run_config(argv, Path.cwd())
     except yaml.YAMLError as exc:
         raise _ConfigError([f"{path}: not valid YAML ({str(exc).splitlines()[0]})"]) from None
-    if not isinstance(data, dict):
-        raise _ConfigError([f"{path}: expected a mapping with keys extract, protocol, results, reports"])
+    bad = [i for i in items if "=" not in i]
+    if bad:
+        raise _ConfigError([f"--config {b}: expected KEY=VALUE" for b in bad])
     if not data.get("protocol"):
         raise _ConfigError([f"{path}: key protocol is missing (the protocol file)"])
     return data
@@ -219,11 +231,11 @@ def cmd_where(args: argparse.Namespace) -> int:
     from emulant.protocol import ProtocolError, load_protocol
 
     try:
-        cfg = _read_config(Path(args.config))
+        cfg = _read_config(args.config, args.configfile)
         protocol = _stage(f"reading the protocol {cfg['protocol']}", lambda: load_protocol(cfg["protocol"]),
                           (ProtocolError,))
     except _ConfigError as exc:
-        _problems(f"config {args.config}", exc.problems)
+        _problems("config", exc.problems)
         return EXIT_PROBLEMS
     except ProtocolError as exc:
         _problems(f"protocol {cfg['protocol']}", exc.problems)
@@ -318,9 +330,12 @@ def build_parser() -> argparse.ArgumentParser:
 
     wh = sub.add_parser("where", help="print where the configured study's results and reports are",
                         description="Read the run configuration and print the study's results "
-                                    "folder and its newest archived report.")
-    wh.add_argument("--config", default="config/config.yaml", metavar="FILE",
-                    help="the run configuration (default config/config.yaml)")
+                                    "folder and its newest archived report. Give the same "
+                                    "--config as the run (KEY=VALUE overrides, as Snakemake takes them).")
+    wh.add_argument("--config", nargs="+", metavar="KEY=VALUE",
+                    help="overrides of the run configuration, e.g. extract=PATH protocol=FILE "
+                         "(one FILE without '=' names the configuration file, as before)")
+    wh.add_argument("--configfile", metavar="FILE", help="the run configuration (default config/config.yaml)")
     wh.set_defaults(func=cmd_where)
 
     dr = sub.add_parser("draft", help="write a first protocol draft from an extract",
@@ -358,11 +373,42 @@ def build_parser() -> argparse.ArgumentParser:
     pd_.add_argument("report", metavar="REPORT.html", help="a report written by the workflow")
     pd_.add_argument("--out", metavar="FILE", help="the PDF to write (default: beside the report)")
     pd_.set_defaults(func=cmd_pdf)
+
+    sub.add_parser("run", help="run the workflow unattended: one run per folder, recovers from "
+                               "an interrupted run, then prints where the report is",
+                   description="emulant run [SNAKEMAKE OPTIONS]: runs snakemake with "
+                               "--rerun-incomplete and the given options (e.g. --cores 2 --config "
+                               "extract=PATH protocol=FILE). A second run of the same folder "
+                               "stops at once; a stale lock left by a killed run is removed "
+                               "only when no run of the folder is alive. Ends by printing the "
+                               "results and report of the study that was run. Exit code: "
+                               "snakemake's, or 2.")
     return parser
+
+
+def cmd_run(rest: Sequence[str]) -> int:
+    """Run the workflow under :func:`emulant.runner.run_workflow`, then print where its report is."""
+    from emulant.runner import RunBusy, config_args, run_workflow
+
+    try:
+        code = run_workflow(rest, Path.cwd(), say=lambda m: print(m, file=sys.stderr))
+    except RunBusy as exc:
+        print(f"emulant run: {exc}", file=sys.stderr)
+        return EXIT_PROBLEMS
+    if code != 0 or any(a in ("-n", "--dry-run", "--dryrun") for a in rest):
+        return code if code else EXIT_OK
+    opts = config_args(rest)
+    files = [opts[i + 1] for i, a in enumerate(opts[:-1]) if a == "--configfile"]
+    items = [a for a in opts if not a.startswith("-") and "=" in a]
+    where = ["where"] + (["--configfile", files[-1]] if files else []) + (["--config", *items] if items else [])
+    return main(where)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of ``emulant``; returns the exit code (0, or 2 on any problem)."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv[:1] == ["run"] and not set(argv[1:2]) & {"-h", "--help"}:
+        return cmd_run(argv[1:])  # everything after `run` is Snakemake's
     parser = build_parser()
     try:
         args = parser.parse_args(argv)

@@ -222,7 +222,14 @@ def archive_report(input: Any, output: Any, params: Any) -> None:
 
 
 def run(snakemake: Any, stage: Callable[[Any, Any, Any], None]) -> None:
-    """Run one stage under Snakemake: log to the rule's log, our errors as exit code 2."""
+    """Run one stage under Snakemake: log to the rule's log, our errors as exit code 2.
+
+    The job stops by itself when its Snakemake process is killed
+    (:func:`emulant.runner.follow_workflow`), so it never writes outputs after its run is gone.
+    """
+    from emulant.runner import follow_workflow
+
+    follow_workflow()
     logfile = snakemake.log[0] if len(snakemake.log) else None
     handlers: list[logging.Handler] = [logging.StreamHandler(sys.stderr)]
     if logfile:

@@ -151,10 +151,23 @@ def test_where(tmp_path, capsys, monkeypatch):
     assert "out/results/tiny-test" in out and "none yet" in out
     ledger = tmp_path / "out" / "reports" / "tiny-test" / "ledger.jsonl"
     ledger.parent.mkdir(parents=True)
-    ledger.write_text(json.dumps({"stamp": "a", "report": "out/reports/tiny-test/a/report.html"}) + "\n"
-                      + json.dumps({"stamp": "b", "report": "out/reports/tiny-test/b/report.html"}) + "\n")
+    ledger.write_text(json.dumps({"stamp": "a", "report": "a/report.html"}) + "\n"  # relative to the ledger
+                      + json.dumps({"stamp": "b", "report": "b/report.html"}) + "\n")
     rc, out, _ = _run(capsys, "where", "--config", "config/config.yaml")
     assert rc == 0 and "latest report: out/reports/tiny-test/b/report.html" in out
+
+
+def test_where_takes_the_runs_config_overrides(tmp_path, capsys, monkeypatch):
+    """`make demo ARGS="--config protocol=..."` must print the study that was run, not the default."""
+    write_protocol(tmp_path / "config" / "protocols", name="demo.yaml")
+    d = protocol_dict()
+    d["study"]["id"] = "other-study"
+    write_protocol(tmp_path / "studies", d, name="other.yaml")
+    (tmp_path / "config" / "config.yaml").write_text(
+        "extract: data/extract\nprotocol: config/protocols/demo.yaml\nresults: results\nreports: reports\n")
+    monkeypatch.chdir(tmp_path)
+    rc, out, _ = _run(capsys, "where", "--config", "extract=elsewhere", "protocol=studies/other.yaml")
+    assert rc == 0 and "results/other-study" in out and "tiny-test" not in out
 
 
 def test_where_missing_config(tmp_path, capsys):
