@@ -15,6 +15,7 @@ import re
 from pathlib import Path
 from typing import Any
 
+from emulant.disclosure import month, show_count, shown_path
 from emulant.extract.check import check_extract
 from emulant.extract.tables import REQUIRED_TABLES, open_extract, q
 from emulant.protocol.keys import BY_PATH
@@ -78,21 +79,23 @@ def draft_text(summary: dict[str, Any], extract: str | Path) -> str:
     starts = [tables[t]["date_min"] for t in sources if tables[t]["date_min"]]
     ends = [tables[t]["date_max"] for t in sources if tables[t]["date_max"]]
     first, last = (max(starts) if starts else None), (min(ends) if ends else None)
-    entry_start = _shift(first, 1) or "YYYY-MM-DD"
-    entry_end = _shift(last, -1) or "YYYY-MM-DD"
+    # by month: no date of a single person (emulant.disclosure)
+    entry_start = f"{month(_shift(first, 1))}-01" if first else "YYYY-MM-DD"
+    entry_end = f"{month(_shift(last, -1))}-01" if last else "YYYY-MM-DD"
     L: list[str] = [
         "# yaml-language-server: $schema=protocol.schema.json",
-        f"# A first protocol draft for the extract {extract}, written by `emulant draft`.",
+        f"# A first protocol draft for the extract {shown_path(extract)}, written by `emulant draft`.",
         "# Fill in every `codes: []` (and check every value), then run",
-        f"#   emulant check --extract {extract} --protocol THIS_FILE",
+        f"#   emulant check --extract {shown_path(extract)} --protocol THIS_FILE",
         "# `emulant schema > protocol.schema.json` beside this file lets an editor complete keys;",
         "# every key is described in the project's docs/protocol.md.",
         "#",
-        f"# The extract: {summary['persons']:,} persons; person_id read as {check['person_id_type']}.",
-        "#   table          rows        first date  last date   columns",
+        f"# The extract: {show_count(summary['persons'], m)} persons; person_id read as {check['person_id_type']}.",
+        "#   table          rows        first month  last month  columns",
     ]
     for t, v in tables.items():
-        L.append(f"#   {t:<14} {v['rows']:>10,}  {v['date_min'] or '':<10}  {v['date_max'] or '':<10}  {', '.join(v['columns'])}")
+        L.append(f"#   {t:<14} {show_count(v['rows'], m):>10}  {month(v['date_min']):<11}  "
+                 f"{month(v['date_max']):<10}  {', '.join(v['columns'])}")
     L.append("#")
     L.append(f"# Most frequent code prefixes ({summary['prefix_length']} characters) of each event source, "
              f"with the persons holding them (only prefixes held by at least {m} persons):")
