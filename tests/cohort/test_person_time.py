@@ -193,7 +193,8 @@ def test_check_prints_deviations_per_arm(tmp_path, capsys):
     from emulant import cli
 
     folder = write_case_extract(tmp_path / "extract")
-    (tmp_path / "protocol.yaml").write_text(yaml.safe_dump(PROTOCOL, sort_keys=False))
+    exact = {**PROTOCOL, "report": {"min_cell": 1}}  # nothing suppressed: the exact counts
+    (tmp_path / "protocol.yaml").write_text(yaml.safe_dump(exact, sort_keys=False))
     rc = cli.main(["check", "--extract", str(folder), "--protocol", str(tmp_path / "protocol.yaml")])
     out = capsys.readouterr().out
     assert rc == 0
@@ -201,6 +202,13 @@ def test_check_prints_deviations_per_arm(tmp_path, capsys):
     # the hand counts of test_deviation_counts
     assert table[:5] == ["arm", "persons", "stopped", "switched", "on_protocol_throughout"]
     assert table[5:15] == ["arm_a", "12", "7", "2", "3", "arm_b", "3", "2", "1", "0"]
+    # with min_cell 5 (the disclosure rule): arm_b's 3 and every cell below 5 are hidden, and with
+    # them the next cell of the row (or of the persons column), so none comes back by subtraction
+    (tmp_path / "protocol.yaml").write_text(yaml.safe_dump({**PROTOCOL, "report": {"min_cell": 5}},
+                                                           sort_keys=False))
+    assert cli.main(["check", "--extract", str(folder), "--protocol", str(tmp_path / "protocol.yaml")]) == 0
+    table = capsys.readouterr().out.split("per arm:")[1].split()
+    assert table[5:15] == ["arm_a", "—", "7", "<5", "<5", "arm_b", "<5", "<5", "<5", "0"]
 
 
 def test_stages_write_deviations_and_periods(tmp_path):
