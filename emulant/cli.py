@@ -24,10 +24,27 @@ class _Failed(Exception):
     """Internal: a stage failed; its message is already printed."""
 
 
-def _problems(title: str, problems: Sequence[str]) -> None:
-    print(f"{title}: {len(problems)} problem(s)", file=sys.stderr)
-    for p in problems:
+def _problems(title: str, problems: Sequence[str], keep: str | None = None) -> None:
+    """Print the problems as the terminal may show them (no person_id examples; disclosure rule).
+
+    With ``keep`` (the ``--save-check`` file), the full problems go to its folder's person-level
+    files instead.
+    """
+    from emulant import disclosure as dc
+
+    shown = [dc.without_person_examples(p) for p in problems]
+    print(f"{dc.without_person_examples(title)}: {len(problems)} problem(s)", file=sys.stderr)
+    for p in shown:
         print(f"  - {p}", file=sys.stderr)
+    if shown != list(problems):
+        if keep:
+            full = Path(keep).parent / dc.PERSON_LEVEL_DIR / "check-problems.txt"
+            full.parent.mkdir(parents=True, exist_ok=True)
+            full.write_text(f"# {dc.PERSON_LEVEL_NOTE}\n" + "\n".join(problems) + "\n", encoding="utf-8")
+            print(f"  (examples with person identifiers: {full})", file=sys.stderr)
+        else:
+            print("  (examples with person identifiers are not printed; add --save-check FILE to "
+                  f"keep them in FILE's folder {dc.PERSON_LEVEL_DIR}/)", file=sys.stderr)
 
 
 def _stage(doing: str, fn: Callable[[], Any], expected: tuple[type[BaseException], ...] = ()) -> Any:
@@ -100,7 +117,7 @@ def cmd_check(args: argparse.Namespace) -> int:
         result = _stage(f"checking the extract {args.extract}",
                         lambda: check_extract(args.extract, protocol, _settings(args)), (ExtractError,))
     except ExtractError as exc:
-        _problems(f"extract {args.extract}", exc.problems)
+        _problems(f"extract {args.extract}", exc.problems, getattr(args, "save_check", None))
         return EXIT_PROBLEMS
     if failed:
         return EXIT_PROBLEMS
@@ -178,63 +195,16 @@ def cmd_synth(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _read_config(items: Sequence[str] | None, configfile: str | None) -> dict[str, Any]:
-    """The run configuration as Snakemake reads it: the config file, then ``KEY=VALUE`` overrides.
-
-    ``--config FILE`` (one item without ``=``) names the file, as before.
-    """
-    import yaml
-
-    from emulant.runner import run_config
-
-    items = list(items or [])
-    if len(items) == 1 and "=" not in items[0]:
-        configfile, items = items[0], []
-    path = Path(configfile or "config/config.yaml")
-    if not path.is_file():
-        raise _ConfigError([f"config file {path} does not exist"])
-    argv = ["--configfile", str(path.resolve())] + (["--config", *items] if items else [])
-    try:
-        data = run_config(argv, Path.cwd())
-    except yaml.YAMLError as exc:
-        raise _ConfigError([f"{path}: not valid YAML ({str(exc).splitlines()[0]})"]) from None
-    bad = [i for i in items if "=" not in i]
-    if bad:
-        raise _ConfigError([f"--config {b}: expected KEY=VALUE" for b in bad])
-    if not data.get("protocol"):
-        raise _ConfigError([f"{path}: key protocol is missing (the protocol file)"])
-    return data
-
-
-class _ConfigError(Exception):
-    def __init__(self, problems: list[str]):
-        self.problems = problems
-        super().__init__("; ".join(problems))
-
-
-def latest_report(reports_dir: Path) -> str | None:
-    """The report of the ledger's last line, or None when there is no ledger yet."""
-    ledger = reports_dir / "ledger.jsonl"
-    if not ledger.is_file():
-        return None
-    lines = [ln for ln in ledger.read_text(encoding="utf-8").splitlines() if ln.strip()]
-    if not lines:
-        return None
-    entry = json.loads(lines[-1])
-    if not isinstance(entry, dict) or not entry.get("report"):
-        return None
-    return str(reports_dir / entry["report"])  # relative to the ledger's folder (older lines: absolute)
-
-
 def cmd_where(args: argparse.Namespace) -> int:
     """Print the results folder of the configured study and its newest archived report."""
     from emulant.protocol import ProtocolError, load_protocol
+    from emulant.runner import ConfigError, latest_report, read_config
 
     try:
-        cfg = _read_config(args.config, args.configfile)
+        cfg = read_config(args.config, args.configfile)
         protocol = _stage(f"reading the protocol {cfg['protocol']}", lambda: load_protocol(cfg["protocol"]),
                           (ProtocolError,))
-    except _ConfigError as exc:
+    except ConfigError as exc:
         _problems("config", exc.problems)
         return EXIT_PROBLEMS
     except ProtocolError as exc:
@@ -267,7 +237,7 @@ def cmd_draft(args: argparse.Namespace) -> int:
                          lambda: write_draft(args.extract, out, args.min_cell, args.prefix_length, _settings(args)),
                          (ExtractError,))
     except ExtractError as exc:
-        _problems(f"extract {args.extract}", exc.problems)
+        _problems(f"extract {args.extract}", exc.problems, getattr(args, "save_check", None))
         return EXIT_PROBLEMS
     print(f"Wrote the protocol draft {out} ({len(summary['check']['tables'])} tables, "
           f"{summary['persons']:,} persons). Fill in every `codes: []`, then run:")

@@ -30,9 +30,10 @@ disclosure handbooks describe both). All functions here are pure.
 
 from __future__ import annotations
 
-import math
 import datetime as dt
-from collections.abc import Mapping, Sequence
+import math
+import re
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
@@ -239,6 +240,17 @@ def shown_path(path: Any, project: str | Path | None = None, extract: str | Path
         except ValueError:
             continue
     return p.name
+
+
+_EXAMPLES = re.compile(r"[;,] e\.g\. [^\n]*")
+
+
+def without_person_examples(text: str, project: str | Path | None = None) -> str:
+    """A message as it may reach a log or the terminal: its examples naming a ``person_id``
+    ("; e.g. person_id 17: ...") left out, and the project folder's absolute path left off."""
+    out = _EXAMPLES.sub(lambda m: "" if "person_id" in m.group(0) else m.group(0), str(text))
+    base = str(Path(project) if project is not None else Path.cwd()).rstrip("/") + "/"
+    return out.replace(base, "")
 
 
 # ----------------------------------------------------------------------------- shared files

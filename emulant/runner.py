@@ -18,12 +18,14 @@ from __future__ import annotations
 import contextlib
 import ctypes
 import fcntl
+import json
 import os
 import signal
 import subprocess
 import sys
 from collections.abc import Iterator, Sequence
 from pathlib import Path
+from typing import Any
 
 import yaml
 
@@ -136,6 +138,52 @@ def run_config(args: Sequence[str], workdir: Path) -> dict:
         k, _, v = item.partition("=")
         cfg[k] = yaml.safe_load(v) if v else v
     return cfg
+
+
+def read_config(items: Sequence[str] | None, configfile: str | None) -> dict[str, Any]:
+    """The run configuration as Snakemake reads it: the config file, then ``KEY=VALUE`` overrides.
+
+    ``--config FILE`` (one item without ``=``) names the file, as before.
+    """
+    items = list(items or [])
+    if len(items) == 1 and "=" not in items[0]:
+        configfile, items = items[0], []
+    path = Path(configfile or "config/config.yaml")
+    if not path.is_file():
+        raise ConfigError([f"config file {path} does not exist"])
+    argv = ["--configfile", str(path.resolve())] + (["--config", *items] if items else [])
+    try:
+        data = run_config(argv, Path.cwd())
+    except yaml.YAMLError as exc:
+        raise ConfigError([f"{path}: not valid YAML ({str(exc).splitlines()[0]})"]) from None
+    bad = [i for i in items if "=" not in i]
+    if bad:
+        raise ConfigError([f"--config {b}: expected KEY=VALUE" for b in bad])
+    if not data.get("protocol"):
+        raise ConfigError([f"{path}: key protocol is missing (the protocol file)"])
+    return data
+
+
+class ConfigError(Exception):
+    """A run configuration that cannot be read; ``problems`` lists why."""
+
+    def __init__(self, problems: list[str]):
+        self.problems = problems
+        super().__init__("; ".join(problems))
+
+
+def latest_report(reports_dir: Path) -> str | None:
+    """The report of the ledger's last line, or None when there is no ledger yet."""
+    ledger = reports_dir / "ledger.jsonl"
+    if not ledger.is_file():
+        return None
+    lines = [ln for ln in ledger.read_text(encoding="utf-8").splitlines() if ln.strip()]
+    if not lines:
+        return None
+    entry = json.loads(lines[-1])
+    if not isinstance(entry, dict) or not entry.get("report"):
+        return None
+    return str(reports_dir / entry["report"])  # relative to the ledger's folder (older lines: absolute)
 
 
 def _die_with_parent() -> None:  # runs in the child between fork and exec

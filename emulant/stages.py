@@ -85,9 +85,8 @@ def synthesize_extract(input: Any, output: Any, params: Any) -> None:
 
 
 def check_extract(input: Any, output: Any, params: Any) -> None:
-    from emulant.extract import check_extract as check
-
     from emulant.audit import shareable
+    from emulant.extract import check_extract as check
 
     protocol = load_protocol(_protocol_path(input))
     report = check(_extract_dir(input), protocol, dict(params.duckdb))
@@ -221,6 +220,20 @@ def archive_report(input: Any, output: Any, params: Any) -> None:
 # ----------------------------------------------------------------------------- entry
 
 
+def _shown_error(message: str, logfile: str | None, rule: str) -> str:
+    """The error as the log and the terminal may show it (:mod:`emulant.disclosure`); the full
+    message, with its person_id examples, goes to the results folder's person-level files."""
+    from emulant import disclosure as dc
+
+    shown = dc.without_person_examples(message)
+    if shown != message and logfile:
+        full = Path(logfile).parent.parent / dc.PERSON_LEVEL_DIR / f"{rule}-problems.txt"
+        full.parent.mkdir(parents=True, exist_ok=True)
+        full.write_text(f"# {dc.PERSON_LEVEL_NOTE}\n{message}\n", encoding="utf-8")
+        shown += f"\n(the examples, with person identifiers, are in {dc.shown_path(full)})"
+    return shown
+
+
 def run(snakemake: Any, stage: Callable[[Any, Any, Any], None]) -> None:
     """Run one stage under Snakemake: log to the rule's log, our errors as exit code 2.
 
@@ -242,6 +255,6 @@ def run(snakemake: Any, stage: Callable[[Any, Any, Any], None]) -> None:
     try:
         stage(snakemake.input, snakemake.output, snakemake.params)
     except EmulantError as exc:
-        log.error("rule %s stopped: %s", snakemake.rule, exc)
+        log.error("rule %s stopped: %s", snakemake.rule, _shown_error(str(exc), logfile, snakemake.rule))
         sys.exit(2)
     log.info("rule %s done in %.1f s", snakemake.rule, time.perf_counter() - t0)

@@ -173,3 +173,18 @@ def test_where_takes_the_runs_config_overrides(tmp_path, capsys, monkeypatch):
 def test_where_missing_config(tmp_path, capsys):
     rc, _, err = _run(capsys, "where", "--config", str(tmp_path / "none.yaml"))
     assert rc == 2 and "does not exist" in err and "Traceback" not in err
+
+
+def test_check_errors_name_no_person_in_the_terminal(tmp_path, capsys):
+    """A bad value is reported by table, column and count; the person_id examples go to the
+    person-level file beside --save-check, never to the terminal (disclosure rule)."""
+    ex = write_extract(tmp_path / "extract")
+    persons = (ex / "persons.csv").read_text().replace("1955-02-10", "not-a-date")
+    (ex / "persons.csv").write_text(persons)
+    saved = tmp_path / "out" / "extract_check.json"
+    rc, out, err = _run(capsys, "check", "--extract", str(ex), "--protocol", str(write_protocol(tmp_path / "proto")),
+                        "--save-check", str(saved))
+    assert rc == 2 and "birth_date" in err and "not dates" in err
+    assert "person_id 2" not in err + out and "not-a-date" not in err + out
+    kept = (saved.parent / "person_level" / "check-problems.txt").read_text()
+    assert "person_id 2" in kept and "person-level" in kept

@@ -17,7 +17,6 @@ from emulant.protocol import Protocol
 from emulant.report import disclosure as dc
 from emulant.report import fmt
 
-
 WEIGHT_QUANTILES = ("1%", "50%", "99%")  # shown of positivity.json's quantiles (no single weight)
 
 
