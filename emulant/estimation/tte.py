@@ -139,6 +139,34 @@ class _Context:
         self.at_risk = {g: number_at_risk(self.time[self.a == g], self.f[self.a == g], self.grid)
                         for g in (0, 1)}
 
+    def past_the_data(self, rows: list[dict]) -> list[dict]:
+        """Empty the horizon rows an arm's follow-up does not reach, with the reason in ``note``.
+
+        An arm with fewer than ``report.min_cell`` persons (frequency-weighted) still at risk on
+        the horizon's day leaves its risk there not estimable, and with it every contrast at that
+        horizon: Kaplan–Meier and Aalen–Johansen would carry their last value forward and the
+        g-formula would extrapolate its time basis (Kaplan & Meier 1958 leave the estimate
+        undefined past the last observation; the threshold is the report's small-cell rule).
+        """
+        m = max(int(self.protocol.report.min_cell), 1)
+        thin = {}
+        for g in (0, 1):
+            k = self.a == g
+            for h, n in zip(self.horizons, number_at_risk(self.time[k], self.f[k], self.horizons),
+                            strict=True):
+                if n < m:
+                    who = "no one" if n == 0 else f"fewer than {m} persons"
+                    thin[g, h] = f"{who} at risk on day {h} in {self.arms[g]}"
+        if not thin:
+            return rows
+        for r in rows:
+            h = r.get("horizon_day")
+            why = [thin[g, h] for g in (1, 0) if (g, h) in thin
+                   and (r["measure"] != "risk" or r["arm"] == self.arms[g])]
+            if why:
+                r["estimate"], r["note"] = float("nan"), "not estimable: " + " and ".join(why)
+        return rows
+
     def contrast_rows(self, estimand, method, risk):
         """risk per arm, risk_difference and risk_ratio at each horizon; risk[g][h]."""
         rows, o = [], self.outcome
@@ -255,4 +283,4 @@ def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict
                 F_h = {g: incidence[g][:, c.grid.size:] for g in (0, 1)}
                 risk = aipw_risk(c.time, c.status, c.a, w_dr, v, F_h, cens, c.horizons)
                 rows += c.contrast_rows(est, "doubly_robust", risk)
-    return rows, curve_rows
+    return c.past_the_data(rows), curve_rows

@@ -166,3 +166,32 @@ def test_doubly_robust_uses_the_untruncated_propensity():
     target = np.array([truth[est][1 if arm == "drug_a" else 0][h] for _, est, arm, h in keys])
     z = (estimate() - target) / se
     assert np.all(np.abs(z) < 3), dict(zip(keys, np.round(z, 1), strict=True))
+
+
+# ------------------------------------------------- horizons past the data
+
+def test_horizons_an_arm_does_not_reach_are_not_estimable():
+    # Kaplan & Meier (1958) leave the estimate undefined past the last observation (from
+    # memory); Aalen–Johansen carries its last value forward there and the g-formula
+    # extrapolates its time basis. Design: the comparator's coverage ends by day 500 for all but
+    # three persons (fewer than report.min_cell = 5), none of whom is followed to day 720.
+    horizons = (365, 540, 720)
+    design = Design(n=3000, max_days=720, censoring=(-9.0, 0.0))
+    cohort, _ = simulate(design, 4, horizons)
+    day, reason = "end_day__event", "end_reason__event"
+    late = (cohort.treated == 0) & (cohort[day] > 500)
+    keep = cohort.index[late][:3]
+    cut = late & ~cohort.index.isin(keep)
+    cohort.loc[cut, [day, reason]] = [500.0, "coverage_end"]
+    cohort.loc[keep, [day, reason]] = [600.0, "coverage_end"]
+    prot = _protocol(720, horizons)
+    rows, _ = time_to_event_estimates(analysis_sample(cohort, prot), "event")
+    for r in rows:
+        h = r["horizon_day"]
+        gone = h in (540, 720) and (r["measure"] != "risk" or r["arm"] == "drug_b")
+        assert np.isnan(r["estimate"]) == gone, r
+        if gone:
+            who = "no one" if h == 720 else "fewer than 5 persons"
+            assert r["note"] == f"not estimable: {who} at risk on day {h} in drug_b", r
+        else:
+            assert "note" not in r
