@@ -12,12 +12,14 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
+import pandas as pd
 import pytest
 from daily_hazards import Design, analysis_sample, bootstrap, expit, simulate
 from two_arm import two_arm_protocol
 
 from emulant.estimation.pooled_logistic import hazard_models
 from emulant.estimation.tte import losses, outcome_arrays, time_to_event_estimates
+from emulant.report.narrative import warnings
 
 METHODS = ("ipw", "standardization", "doubly_robust")
 
@@ -195,3 +197,7 @@ def test_horizons_an_arm_does_not_reach_are_not_estimable():
             assert r["note"] == f"not estimable: {who} at risk on day {h} in drug_b", r
         else:
             assert "note" not in r
+    # the report's warnings panel names them, read from the estimates' note
+    panel = [w["text"] for w in warnings(prot, {"estimates": pd.DataFrame(rows)}, {}, False)]
+    assert ("event: 21 estimate(s) (risk, risk_difference, risk_ratio) not estimable: no one at "
+            "risk on day 720 in drug_b.") in panel
