@@ -32,6 +32,9 @@ def _no_treated_events(n=400, seed=3):
     a = (rng.random(n) < 0.5).astype(int)
     t = rng.integers(1, 365, n).astype(float)
     e = ((rng.random(n) < 0.3) & (a == 0)).astype(int)
+    # a fifth of those without an event followed to day 365, so both arms reach the last horizon
+    # (an arm no one follows to a horizon has nothing estimable there)
+    t[(rng.random(n) < 0.2) & (e == 0)] = 365.0
     return t, e, a
 
 
