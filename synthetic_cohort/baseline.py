@@ -16,9 +16,9 @@ from synthetic_cohort.records import NONE, Rows
 
 VOCAB = (*P.ARM_CODES["kestrel"], *P.ARM_CODES["plover"], *P.FIRST_LINE_CODES,
          *P.OTHER_DRUG_CODES, *P.CMD_CODES, *P.CV_CODES, *P.KIDNEY_CODES, *P.HF_CODES,
-         *P.LENS_CODES, *P.NOISE_DX_CODES, P.MARKER_CODE, P.OTHER_LAB_CODE)
+         *P.LENS_CODES, *P.NOISE_DX_CODES, P.MARKER_CODE, P.OTHER_LAB_CODE, P.TONE_CODE)
 CODE = {c: i for i, c in enumerate(VOCAB)}
-UNITS = (P.MARKER_UNIT, P.OTHER_LAB_UNIT)
+UNITS = (P.MARKER_UNIT, P.OTHER_LAB_UNIT, P.TONE_UNIT)
 INPATIENT, OUTPATIENT = 0, 1
 
 
@@ -77,6 +77,7 @@ class Baseline:
     disp: Rows
     diag: Rows
     meas: Rows
+    tone0: np.ndarray  # the true tone on day 0 (NaN until follow-up is drawn)
 
     def is_design(self, name: str) -> np.ndarray:
         return self.design == list(P.DESIGNS).index(name)
@@ -161,7 +162,8 @@ def baseline(rng: np.random.Generator, n: int) -> Baseline:
                  np.full(n, NONE, np.int64), Rows({"end_date": np.int64}),
                  Rows({"code": np.int64, "days_supply": np.int64}),
                  Rows({"code": np.int64, "setting": np.int64}),
-                 Rows({"code": np.int64, "value": np.float64, "unit": np.int64}))
+                 Rows({"code": np.int64, "value": np.float64, "unit": np.int64}),
+                 np.full(n, np.nan))
     _coverage(rng, b)
     _dispensings(rng, b, n_other)
     _diagnoses(rng, b, cv, kidney)

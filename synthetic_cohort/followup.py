@@ -13,6 +13,7 @@ from __future__ import annotations
 import numpy as np
 
 from synthetic_cohort import params as P
+from synthetic_cohort import sustain
 from synthetic_cohort.baseline import (
     CODE,
     INPATIENT,
@@ -41,7 +42,10 @@ def follow(rng: np.random.Generator, b: Baseline, followed: np.ndarray, t0: np.n
     idx = np.flatnonzero(followed)
     m, day0, a = len(idx), t0[idx], arm[idx]
     xs = {k: v[idx] for k, v in x.items()}
-    t_out = _draw(rng, log_rate(P.PRIMARY, xs, a))
+    supply = b.days_supply[idx]
+    b.tone0[idx] = rng.normal(P.TONE["mean0"], P.TONE["sd0"], m)
+    paths = sustain.simulate(rng, b.tone0[idx], a, supply)
+    t_out = sustain.draw_times(rng, np.exp(sustain.log_hazards(log_rate(P.PRIMARY, xs, a), a, xs["male"], paths)))
     t_nc = _draw(rng, log_rate(P.NEGATIVE_CONTROL, xs, a))
     t_death = _draw(rng, log_rate(P.DEATH, xs, a))
     t_cov = _draw(rng, log_rate(P.COVERAGE_END, xs, a))
@@ -93,18 +97,16 @@ def follow(rng: np.random.Generator, b: Baseline, followed: np.ndarray, t0: np.n
         value = np.round(mean + rng.normal(0.0, P.MARKER_OUTCOME["sd"], m), 1)
         b.meas.add(idx[ok], day0[ok] + dm[ok], code=CODE[P.MARKER_CODE], value=value[ok], unit=0)
 
-    # refills of the index class, switching to the other class, the first-line drug
-    supply = b.days_supply[idx]
-    k = np.minimum(rng.poisson(5.0, m), 12)
-    rep = np.repeat(np.arange(m), k)
-    j = np.arange(len(rep)) - np.repeat(np.cumsum(k) - k, k) + 1
-    dd = j * (supply[rep] + 7) + rng.integers(0, 8, len(rep))
-    ok = (dd <= cend[rep]) & (dd < t_death[rep])
-    b.disp.add(idx[rep[ok]], day0[rep[ok]] + dd[ok], code=b.arm_code[idx[rep[ok]]],
-               days_supply=supply[rep[ok]])
-    dsw = uniform_days(rng, 60, 700, m)
-    ok = (rng.random(m) < 0.08) & allowed(dsw)
-    b.disp.add(idx[ok], day0[ok] + dsw[ok], code=arm_codes(rng, 1 - a[ok]), days_supply=30)
+    # the tone on the first day of every period k >= 1 up to a deviation; refills and switches
+    last_day = np.minimum(cend, np.ceil(t_death).astype(np.int64) - 1)
+    k = np.arange(1, P.N_PERIODS)
+    pk, kk = np.nonzero((P.PERIOD_DAYS * k[None, :] <= last_day[:, None])
+                        & (k[None, :] <= paths.k_dev[:, None]))  # none after a deviation
+    b.meas.add(idx[pk], day0[pk] + P.PERIOD_DAYS * k[kk], code=CODE[P.TONE_CODE],
+               value=paths.R[pk, k[kk]], unit=2)
+    who, dd, s, own = sustain.dispensings(rng, supply, paths, last_day)
+    code = np.where(own, b.arm_code[idx[who]], arm_codes(rng, 1 - a[who]))
+    b.disp.add(idx[who], day0[who] + dd, code=code, days_supply=s)
     dfl = uniform_days(rng, 1, 120, m)
     ok = b.first_line[idx] & allowed(dfl)
     b.disp.add(idx[ok], day0[ok] + dfl[ok], code=CODE[P.FIRST_LINE_CODES[0]], days_supply=90)

@@ -30,7 +30,12 @@ from synthetic_cohort import rules
 from synthetic_cohort.baseline import UNITS, VOCAB, baseline
 from synthetic_cohort.followup import follow
 from synthetic_cohort.records import NONE, SETTINGS, Table, Tables, person_ids, to_arrow
-from synthetic_cohort.truth import measured_truth, time_to_event_truth
+from synthetic_cohort.truth import (
+    measured_truth,
+    summarise_risks,
+    sustained_risks,
+    time_to_event_truth,
+)
 
 HERE = Path(__file__).resolve().parent
 TEMPLATE = HERE / "demo_protocol.yaml"
@@ -40,6 +45,7 @@ FORMATS = ("parquet", "csv")
 CSV_OPTIONS = pacsv.WriteOptions(quoting_style="needed")
 OUTCOME_PARAMS = {"hf_admission": P.PRIMARY, "lens_opacity": P.NEGATIVE_CONTROL,
                   "death": P.DEATH}  # all-cause death, for the decision summary
+PRIMARY_NAME = "hf_admission"  # the outcome whose hazard follows the tone and the class taken
 NOT_FOLLOWED = ("never_initiates", "arm_record_after_death", "initiated_before_window")
 
 
@@ -104,24 +110,41 @@ def build(persons: int, seed: int, protocol: Protocol | None = None) -> tuple[Ta
     x = measured_covariates(rules.plausible(first), protocol, np.where(followed, t0, NONE))
     follow(rng, b, followed, t0, arm, x)
     tables = _assemble(b)
-    return tables, _truth(protocol, cohort, x, persons, seed)
+    return tables, _truth(protocol, cohort, x, persons, seed, b)
 
 
-def _truth(protocol: Protocol, cohort: rules.Cohort, x: dict, persons: int, seed: int) -> dict:
+def _truth(protocol: Protocol, cohort: rules.Cohort, x: dict, persons: int, seed: int,
+           b) -> dict:
     st = protocol.strategies
     if tuple(a.name for a in st.arms) != P.ARMS or st.treated != P.TREATED:
         raise SynthError("the demo protocol's arms must be " + ", ".join(P.ARMS))
     el = cohort.eligible
     xe = {k: v[el] for k, v in x.items()}
     arm = cohort.arm[el]
-    tte = {name: time_to_event_truth(xe, arm, OUTCOME_PARAMS[name],
-                                     protocol.analysis.horizons_days, st.treated, st.comparator)
-           for name in protocol.outcomes.time_to_event()}
-    subgroups = {label: {name: time_to_event_truth(xe, arm, OUTCOME_PARAMS[name],
-                                                   protocol.analysis.horizons_days, st.treated,
-                                                   st.comparator, among)
-                         for name in protocol.outcomes.time_to_event()}
-                 for label, among in _subgroup_levels(protocol, xe)}
+    horizons = protocol.analysis.horizons_days
+    levels = _subgroup_levels(protocol, xe)
+    closed = [n for n in protocol.outcomes.time_to_event() if n != PRIMARY_NAME]
+    tte = {name: time_to_event_truth(xe, arm, OUTCOME_PARAMS[name], horizons, st.treated,
+                                     st.comparator)
+           for name in closed}
+    subgroups = {label: {name: time_to_event_truth(xe, arm, OUTCOME_PARAMS[name], horizons,
+                                                   st.treated, st.comparator, among)
+                         for name in closed}
+                 for label, among in levels}
+    # the primary outcome depends on the tone and the treatment taken over time: its truths are
+    # the same persons simulated under each strategy (a stream of its own: the data stay as
+    # drawn), the per-person risks averaged over the cohort and within each subgroup level
+    itt, pp = sustained_risks(xe, arm, b.tone0[el], b.days_supply[el], horizons,
+                              np.random.default_rng([seed, 13]))
+
+    def summary(risks, among=None):
+        return summarise_risks(risks, arm, horizons, st.treated, st.comparator, among)
+
+    tte = {PRIMARY_NAME: summary(itt), **tte}
+    for label, among in levels:
+        subgroups[label] = {PRIMARY_NAME: summary(itt, among), **subgroups[label]}
+    per_protocol = {PRIMARY_NAME: summary(pp)}
+    subgroups_pp = {label: {PRIMARY_NAME: summary(pp, among)} for label, among in levels}
     measured = {}
     for m in protocol.outcomes.measured():
         if m.measure != "marker" or m.change_from_baseline:
@@ -134,22 +157,27 @@ def _truth(protocol: Protocol, cohort: rules.Cohort, x: dict, persons: int, seed
         "eligible": {"n": int(el.sum()), "by_arm": by_arm},
         "attrition": [{"step": s, "remaining": r} for s, r in cohort.attrition],
         "time_to_event": tte, "measured": measured, "subgroups": subgroups,
-        "dgp": {"hazard_ratio": {k: v["hazard_ratio"][st.treated] / v["hazard_ratio"][st.comparator]
-                                 for k, v in OUTCOME_PARAMS.items()},
-                "hazard_ratio_men": {k: v["hazard_ratio_male"][st.treated]
-                                     / v["hazard_ratio_male"][st.comparator]
-                                     for k, v in OUTCOME_PARAMS.items() if "hazard_ratio_male" in v},
+        "per_protocol": per_protocol, "subgroups_per_protocol": subgroups_pp,
+        "dgp": {"hazard_ratio": {PRIMARY_NAME: P.PRIMARY_TAKEN[st.treated] / P.PRIMARY_TAKEN[st.comparator],
+                                 "lens_opacity": 1.0, "death": 1.0},
+                "hazard_ratio_men": {PRIMARY_NAME: P.PRIMARY_TAKEN_MALE[st.treated]
+                                     / P.PRIMARY_TAKEN_MALE[st.comparator]},
+                "tone_per_10": P.PRIMARY_TONE10, "tone_target": P.TONE["target"],
+                "sustain_gap_days": P.SUSTAIN_GAP,
                 "marker_effect": P.MARKER_OUTCOME["effect"][st.treated]
                 - P.MARKER_OUTCOME["effect"][st.comparator]},
         "description": (
             "Invented registry: adults with a chronic metabolic disorder starting kestrel "
-            "(treated) or plover. True values are exact per-person expectations under each "
-            "strategy (constant cause-specific hazards, death competing, no censoring) "
+            "(treated) or plover. True values are per-person expectations under each "
+            "strategy (piecewise-constant cause-specific hazards, death competing, no censoring) "
             "averaged over the eligible cohort; ATT averages over kestrel initiators. "
-            "Conditional hazard ratio kestrel/plover: 0.6 for hf_admission in women and 0.8 in "
-            "men (truths by subgroup under 'subgroups'), 1 for lens_opacity "
-            "(negative control), 1 for death (all-cause, no competing event); marker near "
-            "day 365: -4.0 under kestrel."),
+            "hf_admission depends on the tone marker and the class taken in each 30-day period "
+            "(direct hazard ratio while on kestrel: 0.75 in women, 1.05 in men); its "
+            "intention-to-treat truth averages over simulated switch and stop paths, its "
+            "per_protocol truth keeps everyone on the assigned class throughout; both are "
+            "averaged within each subgroup level too ('subgroups', 'subgroups_per_protocol'). "
+            "lens_opacity (negative control): hazard ratio 1; death (all-cause, no competing "
+            "event): hazard ratio 1; marker near day 365: -4.0 under kestrel."),
     })
 
 

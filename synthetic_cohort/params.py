@@ -103,11 +103,10 @@ TREATMENT = {"intercept": -0.45, "age10": 0.35, "male": 0.1, "cv": 0.9, "kidney"
 # -- follow-up hazards per year; covariates as measured: age (completed years), male,
 # prior_cv, kidney, lab (last baseline value; 55 when missing) with its missing indicator,
 # n_drugs (distinct codes), region.
+# the primary outcome: this baseline part times the tone and treatment-taken terms below
 PRIMARY = {"rate": 0.035, "age10": 0.45, "male": 0.25, "cv": 0.7, "kidney": 0.4, "lab10": 0.25,
            "lab_missing": 0.2, "drugs": 0.12, "region": (0.0, 0.15, -0.1, 0.25, -0.2),
-           "hazard_ratio": {"kestrel": 0.6, "plover": 1.0},
-           # effect modification by sex (the subgroup analyses' truth): men's hazard ratio
-           "hazard_ratio_male": {"kestrel": 0.8, "plover": 1.0}}
+           "hazard_ratio": {"kestrel": 1.0, "plover": 1.0}}
 NEGATIVE_CONTROL = {"rate": 0.02, "age10": 0.6, "male": -0.2, "cv": 0.5, "kidney": 0.5,
                     "lab10": 0.4, "lab_missing": 0.3, "drugs": 0.15,
                     "region": (0.0, 0.1, 0.0, 0.2, -0.1),
@@ -134,3 +133,29 @@ MARKER_JITTER = 45  # the outcome measurement falls on day 365 +- U{0..45}
 # logit P(measured near day 365 | alive, covered) -- depends on measured covariates and arm only
 MARKER_MEASURED = {"intercept": 1.0, "lab_measured": 0.9, "age10": -0.15, "kestrel": 0.3,
                    "region": (0.0, -0.3, 0.2, -0.5, 0.3)}
+
+# -- staying on the strategy (CONTRACTS §5b) and a time-varying marker it changes. The "tone"
+# marker (invented, code LBT1) is measured on the first day of every 30-day period k >= 1 while
+# the person is alive, covered and on their strategy (up to the deviation day). Its true value
+# moves each period a share RATE of the way to the target of the treatment taken in the period
+# before (kestrel 43, plover 46, none 54). At each measurement a person still on their strategy
+# switches to the other class, or stops (no further supply; possible once day 30k >= first supply
+# + SUSTAIN_GAP), with logit probabilities rising with the recorded value: the marker is a
+# time-varying confounder affected by prior treatment. The dispensings are written so that the
+# §5b reading with gap SUSTAIN_GAP dates each deviation on that measurement day exactly (refills
+# on time or up to 5 days early, a last part-supply ending SUSTAIN_GAP + 1 days before the stop).
+# The drug acts until that day.
+PERIOD_DAYS = 30
+N_PERIODS = 37  # 37 periods of 30 days cover max_days 1095
+SUSTAIN_GAP = 60  # the demo protocol's sustain.gap_days (keep in step with the template)
+TONE_CODE, TONE_UNIT = "LBT1", "index"
+TONE = {"mean0": 50.0, "sd0": 8.0, "rate": 0.25, "noise": 1.5,
+        "target": {"kestrel": 43.0, "plover": 46.0, "none": 54.0}}
+SWITCH = {"intercept": -3.8, "tone5": 0.8}  # logit P(switch at a measurement | on strategy)
+STOP = {"intercept": -3.2, "tone5": 1.0}  # logit P(stop at a measurement | on strategy, possible)
+# the primary outcome's hazard also depends on the tone in each period (per 10 units above 50)
+# and on the treatment taken in it: a direct hazard ratio per class (none: 1), for women and, a
+# weaker one, for men (effect modification by sex: the subgroup analyses' truth)
+PRIMARY_TONE10 = 0.9
+PRIMARY_TAKEN = {"kestrel": 0.75, "plover": 1.0, "none": 1.0}
+PRIMARY_TAKEN_MALE = {"kestrel": 1.05, "plover": 1.0, "none": 1.0}

@@ -30,11 +30,7 @@ def log_rate(par: dict, x: dict[str, np.ndarray], arm: np.ndarray | str) -> np.n
     lab = x["lab"]
     missing = np.isnan(lab)
     hr = np.log(np.asarray([par["hazard_ratio"][a] for a in P.ARMS]))
-    arm_i = P.ARMS.index(arm) if isinstance(arm, str) else np.asarray(arm)
-    arm_term = hr[arm_i]
-    if "hazard_ratio_male" in par:  # the arm's effect differs for men
-        hr_m = np.log(np.asarray([par["hazard_ratio_male"][a] for a in P.ARMS]))
-        arm_term = np.where(x["male"] == 1, hr_m[arm_i], arm_term)
+    arm_term = hr[P.ARMS.index(arm)] if isinstance(arm, str) else hr[np.asarray(arm)]
     return (np.log(par["rate"] / DAYS_PER_YEAR) + par["age10"] * (x["age"] - P.AGE_MEAN) / 10
             + par["male"] * x["male"] + par["cv"] * x["cv"] + par["kidney"] * x["kidney"]
             + par["lab10"] * np.where(missing, 0.0, (lab - P.LAB_MEAN) / 10)
@@ -87,6 +83,61 @@ def time_to_event_truth(x: dict[str, np.ndarray], arm: np.ndarray, par: dict,
         # all-cause death as the outcome has no competing event
         hd = np.zeros_like(h) if par is P.DEATH else np.exp(log_rate(P.DEATH, x, a))
         risks[a] = np.stack([cumulative_incidence(h, hd, float(t)) for t in horizons])
+    return summarise_risks(risks, arm, horizons, treated, comparator, among)
+
+
+def measured_truth(x: dict[str, np.ndarray], arm: np.ndarray, treated: str,
+                   comparator: str) -> dict:
+    """True mean marker under each arm and their difference, for ATE and ATT."""
+    groups = {"ATE": np.ones(len(arm), bool), "ATT": arm == P.ARMS.index(treated)}
+    out = {}
+    for estimand, g in groups.items():
+        mean = {a: float(marker_mean({k: v[g] for k, v in x.items()}, a).mean()) for a in P.ARMS}
+        out[estimand] = {"mean": mean, "mean_difference": mean[treated] - mean[comparator]}
+    return out
+
+
+def sustained_risks(x: dict[str, np.ndarray], arm: np.ndarray, tone0: np.ndarray,
+                    supply: np.ndarray, horizons: tuple[int, ...], rng: np.random.Generator,
+                    paths_per_arm: int = 200_000) -> tuple[dict, dict]:
+    """The primary outcome's true per-person risks under each strategy, for the same eligible
+    persons: ``(intention_to_treat, per_protocol)``, each ``{arm: (len(horizons), n)}``, to be
+    averaged by :func:`summarise_risks` over the cohort or a subgroup.
+
+    Intention to treat: every person assigned to each arm in turn, deviating as the registry's
+    process would (about ``paths_per_arm`` simulated paths per arm, at least one per person),
+    the exact piecewise risk averaged over paths. Per protocol: every person stays on the
+    assigned class throughout, a deterministic tone path and the exact risk, no Monte Carlo.
+    """
+    from synthetic_cohort import sustain
+
+    n = len(arm)
+    reps = max(1, -(-paths_per_arm // max(n, 1)))
+    chunk = max(1, 200_000 // reps)
+    itt, pp = {}, {}
+    for ai, a in enumerate(P.ARMS):
+        base = log_rate(P.PRIMARY, x, a)
+        hd = np.exp(log_rate(P.DEATH, x, a))
+        forced = np.full(n, ai)
+        paths = sustain.simulate(rng, tone0, forced, supply, adhere=True)
+        pp[a] = sustain.cumulative_incidence(
+            np.exp(sustain.log_hazards(base, forced, x["male"], paths)), hd, horizons)
+        risk = np.zeros((len(horizons), n))
+        for lo in range(0, n, chunk):
+            sel = np.repeat(np.arange(lo, min(n, lo + chunk)), reps)
+            paths = sustain.simulate(rng, tone0[sel], forced[sel], supply[sel])
+            f = sustain.cumulative_incidence(
+                np.exp(sustain.log_hazards(base[sel], forced[sel], x["male"][sel], paths)),
+                hd[sel], horizons)
+            np.add.at(risk.T, sel, f.T / reps)
+        itt[a] = risk
+    return itt, pp
+
+
+def summarise_risks(risks: dict[str, np.ndarray], arm: np.ndarray, horizons, treated: str,
+                    comparator: str, among: np.ndarray | None = None) -> dict:
+    """Per-person risks ``{arm: (len(horizons), n)}`` averaged for ATE (everyone, or everyone
+    in the ``among`` mask) and ATT (the treated arm's initiators among them)."""
     inside = np.ones(len(arm), bool) if among is None else np.asarray(among, bool)
     groups = {"ATE": inside, "ATT": inside & (arm == P.ARMS.index(treated))}
     out = {}
@@ -98,15 +149,4 @@ def time_to_event_truth(x: dict[str, np.ndarray], arm: np.ndarray, par: dict,
             "risk_difference": {str(t): float(rd[i]) for i, t in enumerate(horizons)},
             "risk_ratio": {str(t): float(rr[i]) for i, t in enumerate(horizons)},
         }
-    return out
-
-
-def measured_truth(x: dict[str, np.ndarray], arm: np.ndarray, treated: str,
-                   comparator: str) -> dict:
-    """True mean marker under each arm and their difference, for ATE and ATT."""
-    groups = {"ATE": np.ones(len(arm), bool), "ATT": arm == P.ARMS.index(treated)}
-    out = {}
-    for estimand, g in groups.items():
-        mean = {a: float(marker_mean({k: v[g] for k, v in x.items()}, a).mean()) for a in P.ARMS}
-        out[estimand] = {"mean": mean, "mean_difference": mean[treated] - mean[comparator]}
     return out
