@@ -282,15 +282,17 @@ def finish_covariates(cohort: pd.DataFrame, protocol: Protocol) -> pd.DataFrame:
     return out
 
 
-def covariate_kinds(protocol: Protocol, cohort: pd.DataFrame) -> dict[str, str]:
-    """Each covariate's kind: the protocol's ``kind``, else decided from the cohort.
+def covariate_kinds(protocol: Protocol, cohort: pd.DataFrame,
+                    covariates: tuple | None = None) -> dict[str, str]:
+    """Each covariate's kind: the protocol's ``kind``, else decided from the cohort (or from
+    ``periods.parquet`` for ``covariates=protocol.time_varying``).
 
     ``sex`` and text columns are categorical, numeric columns whose known values are all 0 or 1
     are binary, other numeric columns continuous. Rows flagged ``<name>_missing`` are ignored,
     so a median fill does not turn a binary covariate continuous.
     """
     kinds = {}
-    for cov in protocol.covariates:
+    for cov in protocol.covariates if covariates is None else covariates:
         values = cohort[cov.name]
         flag = missing_flag(cov.name)
         if flag in cohort.columns:

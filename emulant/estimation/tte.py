@@ -97,8 +97,8 @@ def _end_columns(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _row(outcome, estimand, method, measure, horizon, arm, comparator, estimate, n, events,
-         note=""):
-    row = {"outcome": outcome, "contrast": CONTRAST, "estimand": estimand, "method": method,
+         note="", contrast=CONTRAST):
+    row = {"outcome": outcome, "contrast": contrast, "estimand": estimand, "method": method,
            "measure": measure, "horizon_day": horizon, "arm": arm, "comparator": comparator,
            "estimate": float(estimate), "n": None if n is None else int(round(n)),
            "events": None if events is None else int(round(events))}
@@ -115,13 +115,17 @@ def _zero_risk_note(r1: float, r0: float, arms: dict, horizon) -> str:
     return f"not estimable: no events by day {horizon} in {' and '.join(empty)}"
 
 
-class _Context:
-    """What every method of one outcome shares: arrays, arms, grid, counts."""
+class OutcomeContext:
+    """What every method of one outcome shares: arrays, arms, grid, counts.
 
-    def __init__(self, sample, outcome: str):
+    ``arrays`` replaces the outcome's ``(time, status)`` (per protocol: artificially censored),
+    ``contrast`` the rows' contrast.
+    """
+
+    def __init__(self, sample, outcome: str, arrays=None, contrast: str = CONTRAST):
         p = sample.protocol
-        self.outcome, self.protocol = outcome, p
-        self.time, self.status = outcome_arrays(sample.cohort, outcome)
+        self.outcome, self.protocol, self.contrast = outcome, p, contrast
+        self.time, self.status = outcome_arrays(sample.cohort, outcome) if arrays is None else arrays
         self.cohort = sample.cohort
         self.a = np.asarray(sample.a).astype(int)
         self.f = np.asarray(sample.freq, dtype=float)
@@ -173,21 +177,22 @@ class _Context:
         for h in self.horizons:
             for g in (1, 0):
                 rows.append(_row(o, estimand, method, "risk", h, self.arms[g], None,
-                                 risk[g][h], self.n[g], self.events[g, h]))
+                                 risk[g][h], self.n[g], self.events[g, h], contrast=self.contrast))
             n, ev = self.n[0] + self.n[1], self.events[0, h] + self.events[1, h]
             r1, r0 = risk[1][h], risk[0][h]
             rows.append(_row(o, estimand, method, "risk_difference", h, self.arms[1],
-                             self.arms[0], r1 - r0, n, ev))
+                             self.arms[0], r1 - r0, n, ev, contrast=self.contrast))
             rr = r1 / r0 if r0 > 0 and r1 > 0 else float("nan")
             rows.append(_row(o, estimand, method, "risk_ratio", h, self.arms[1], self.arms[0],
-                             rr, n, ev, note=_zero_risk_note(r1, r0, self.arms, h)))
+                             rr, n, ev, note=_zero_risk_note(r1, r0, self.arms, h),
+                             contrast=self.contrast))
         return rows
 
     def curve_rows(self, estimand, method, curves):
         rows = []
         for g in (1, 0):
             for day, r, nr in zip(self.grid, curves[g], self.at_risk[g], strict=True):
-                rows.append({"contrast": CONTRAST, "estimand": estimand, "method": method,
+                rows.append({"contrast": self.contrast, "estimand": estimand, "method": method,
                              "arm": self.arms[g], "day": int(day), "risk": float(r),
                              "at_risk": int(round(nr))})
         return rows
@@ -223,7 +228,7 @@ def time_to_event_estimates(sample, outcome: str) -> tuple[list[dict], list[dict
     counts of persons and of outcome events (by the horizon, or over follow-up for hazard ratios
     and rates).
     """
-    c = _Context(sample, outcome)
+    c = OutcomeContext(sample, outcome)
     an = c.protocol.analysis
     methods = [m for m in an.methods if m != "unadjusted"]
     rows: list[dict] = []
