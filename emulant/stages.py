@@ -147,14 +147,23 @@ def check_balance(input: Any, output: Any, params: Any) -> None:
     write_csv(output.balance, table)
 
 
+def _periods(input: Any) -> pd.DataFrame | None:
+    """periods.parquet when the rule has it as an input (the per-protocol contrast)."""
+    path = getattr(input, "periods", None)
+    return pd.read_parquet(path) if path else None
+
+
 def estimate_point(input: Any, output: Any, params: Any) -> None:
     from emulant.estimation.chunks import point_to_json
-    from emulant.estimation.effects import point_estimate
+    from emulant.estimation.effects import adherence_table, point_estimate
 
     protocol = load_protocol(_protocol_path(input))
-    point = point_estimate(pd.read_parquet(input.cohort), protocol)
+    cohort, periods = pd.read_parquet(input.cohort), _periods(input)
+    point = point_estimate(cohort, protocol, periods)
     with atomic(output.point) as tmp:
         tmp.write_text(point_to_json(point), encoding="utf-8")
+    if getattr(output, "adherence", None):
+        write_csv(output.adherence, adherence_table(cohort, protocol, periods))
 
 
 def bootstrap_chunk(input: Any, output: Any, params: Any) -> None:
@@ -164,7 +173,8 @@ def bootstrap_chunk(input: Any, output: Any, params: Any) -> None:
     protocol = load_protocol(_protocol_path(input))
     only = range(int(params.first), int(params.last) + 1)
     run = bootstrap_replicates(pd.read_parquet(input.cohort), protocol, read_point(input.point),
-                               only, workers=int(params.workers), progress=sys.stderr.isatty())
+                               only, workers=int(params.workers), progress=sys.stderr.isatty(),
+                               periods=_periods(input))
     log.info("replicates %d-%d: %d completed, %d failed in %.1f s on %d worker(s)", only.start,
              only.stop - 1, run.completed, run.failed, run.seconds, run.workers)
     with atomic(output.chunk) as tmp, open(tmp, "wb") as fh:

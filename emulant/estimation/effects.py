@@ -34,6 +34,11 @@ from emulant.estimation.decision import DECISION_COLUMNS, decision_table
 from emulant.estimation.evalue import e_value_rows
 from emulant.estimation.intervals import attach_intervals, non_estimable_replicates
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
+from emulant.estimation.per_protocol import (
+    adherence_summary,
+    per_protocol_estimates,
+    sample_adherence,
+)
 from emulant.estimation.sample import (
     TREATED,
     AnalysisSample,
@@ -44,6 +49,7 @@ from emulant.estimation.sample import (
 from emulant.estimation.subgroups import LevelAnalysis, level_differences, prepare_levels
 from emulant.estimation.tte import time_to_event_estimates
 from emulant.models.design import DesignError, build_design
+from emulant.models.treatment_process import PersonPeriods, TreatmentProcessError, person_periods
 from emulant.models.weights import WeightsError
 from emulant.progress import Progress
 from emulant.protocol import MeasuredOutcome, Protocol
@@ -58,21 +64,31 @@ CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low
 EffectsError = EstimationError  # the same class under the module's name
 
 
-def estimate_sample(sample: AnalysisSample, progress: Progress | None = None
+def estimate_sample(sample: AnalysisSample, progress: Progress | None = None,
+                    person_time: PersonPeriods | None = None, problems: list | None = None
                     ) -> tuple[list[dict], list[dict]]:
     """Every outcome of the protocol for one sample (the point estimate or one replicate).
 
     Returns ``(rows, curve_rows)``: estimates.csv rows without ``se, ci_low, ci_high`` and
     curves.csv rows without ``ci_low, ci_high``. ``progress`` is stepped once per outcome.
+    With ``person_time`` (the per-protocol contrast) the weights over time are refitted with the
+    sample's frequency weights and every time-to-event outcome gets its per-protocol rows too;
+    models that did not converge are appended to ``problems``.
     """
     rows: list[dict] = []
     curves: list[dict] = []
     outcomes = sample.protocol.outcomes
+    adherence = sample_adherence(sample, person_time) if person_time is not None else None
     for outcome in outcomes.all():  # primary, secondary, negative controls
         if isinstance(outcome, MeasuredOutcome):
             rows += measured_outcome_rows(sample, outcome)
         else:
             r, c = time_to_event_estimates(sample, outcome)
+            if adherence is not None:
+                r2, c2, fit_problems = per_protocol_estimates(sample, person_time, adherence, outcome)
+                r, c = list(r) + r2, list(c) + c2
+                if problems is not None:
+                    problems += [p for p in fit_problems if p not in problems]
             rows += list(r)
             # curves.csv has no outcome column (CONTRACTS §4); with several time-to-event
             # outcomes their curves need one to be told apart: the outcome's name
@@ -84,7 +100,8 @@ def estimate_sample(sample: AnalysisSample, progress: Progress | None = None
 
 def replicate_estimates(cohort: pd.DataFrame, protocol: Protocol, design: Any, X: np.ndarray,
                         freq: np.ndarray, levels: tuple[LevelAnalysis, ...] = (),
-                        starts: dict | None = None) -> tuple[list[dict], list[dict]]:
+                        starts: dict | None = None, person_time: PersonPeriods | None = None
+                        ) -> tuple[list[dict], list[dict]]:
     """One bootstrap replicate: the whole analysis refitted with frequency weights ``freq``,
     then within each subgroup level of ``levels``.
 
@@ -98,7 +115,10 @@ def replicate_estimates(cohort: pd.DataFrame, protocol: Protocol, design: Any, X
     sample = build_sample(cohort, protocol, design, X, freq, starts)
     if sample.warnings:
         raise SampleError(sample.warnings[0])
-    rows, curves = estimate_sample(sample)
+    problems: list[str] = []
+    rows, curves = estimate_sample(sample, person_time=person_time, problems=problems)
+    if problems:
+        raise SampleError(problems[0])
     for lv in levels:
         rows += level_estimates(lv, protocol, freq, point=False)[0]
     return rows, curves
@@ -206,16 +226,34 @@ def _prepare(cohort: pd.DataFrame, protocol: Protocol
     return design, np.asarray(design.transform(cohort), dtype=float), levels, account
 
 
-def point_estimate(cohort: pd.DataFrame, protocol: Protocol) -> PointEstimate:
+def person_time_of(cohort: pd.DataFrame, protocol: Protocol,
+                   periods: pd.DataFrame | None) -> PersonPeriods | None:
+    """``periods.parquet`` aligned with the cohort when the protocol asks for per protocol."""
+    if not protocol.per_protocol:
+        return None
+    if periods is None:
+        raise EstimationError("contrasts: per_protocol needs periods.parquet (the person-periods)")
+    try:
+        kinds = covariate_kinds(protocol, periods, protocol.time_varying)
+        return person_periods(cohort, periods, protocol.analysis.period_days,
+                              protocol.time_varying, kinds, protocol.analysis.propensity.continuous)
+    except (DesignError, TreatmentProcessError, KeyError) as exc:
+        raise EstimationError(f"the per-protocol estimate cannot be computed: {exc}") from None
+
+
+def point_estimate(cohort: pd.DataFrame, protocol: Protocol,
+                   periods: pd.DataFrame | None = None) -> PointEstimate:
     """Every outcome, estimand and method with unit frequency weights (no intervals yet), for
     the whole cohort and each subgroup level."""
     design, X, levels, account = _prepare(cohort, protocol)
     steps = Progress("point estimate (sample, each outcome, each subgroup level)",
                      1 + len(protocol.outcomes.all()) + len(levels))
+    person_time = person_time_of(cohort, protocol, periods)
+    problems: list[str] = []
     try:
         point = build_sample(cohort, protocol, design, X)
         steps.step()
-        rows, curves = estimate_sample(point, steps)
+        rows, curves = estimate_sample(point, steps, person_time, problems)
     except (SampleError, WeightsError) as exc:
         raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
     ones = np.ones(len(cohort))
@@ -231,16 +269,26 @@ def point_estimate(cohort: pd.DataFrame, protocol: Protocol) -> PointEstimate:
     for a in account:
         if a["subgroup"] in reasons:
             a.update(estimable=False, reason=reasons[a["subgroup"]])
-    for w in point.warnings:
+    for w in (*point.warnings, *problems):
         log.warning("point estimate: %s", w)
     starts = {o: {k: [float(v) for v in c] for k, c in m.items()} for o, m in point.fitted.items()}
-    return PointEstimate(rows, curves, list(point.warnings), account, starts)
+    return PointEstimate(rows, curves, [*point.warnings, *problems], account, starts)
+
+
+def adherence_table(cohort: pd.DataFrame, protocol: Protocol,
+                    periods: pd.DataFrame) -> pd.DataFrame:
+    """The point estimate's weights over time summarised per estimand, arm and period."""
+    design, X, _, _ = _prepare(cohort, protocol)
+    person_time = person_time_of(cohort, protocol, periods)
+    point = build_sample(cohort, protocol, design, X)
+    return adherence_summary(point, person_time, sample_adherence(point, person_time))
 
 
 def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointEstimate,
                          only: range | None = None, workers: int = 2,
                          progress: bool | Callable | None = None,
-                         start_method: str | None = None) -> BootstrapRun:
+                         start_method: str | None = None,
+                         periods: pd.DataFrame | None = None) -> BootstrapRun:
     """Replicates ``only`` (all when None) of the protocol's bootstrap, aligned to ``point``."""
     design, X, levels, _ = _prepare(cohort, protocol)
     estimable = {a["subgroup"] for a in point.subgroups if a["estimable"]}
@@ -248,7 +296,7 @@ def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointE
     starts = {o: {k: np.asarray(c, dtype=float) for k, c in m.items()}
               for o, m in point.starts.items()}
     estimator = partial(replicate_estimates, cohort, protocol, design, X, levels=levels,
-                        starts=starts)
+                        starts=starts, person_time=person_time_of(cohort, protocol, periods))
     return run_bootstrap(estimator, len(cohort), protocol, point.rows, point.curves,
                          workers=workers, progress=progress, start_method=start_method, only=only)
 
@@ -275,7 +323,8 @@ def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Pro
 
 def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
                      progress: bool | Callable | None = None,
-                     start_method: str | None = None) -> EffectsResult:
+                     start_method: str | None = None,
+                     periods: pd.DataFrame | None = None) -> EffectsResult:
     """The point estimates of every outcome, estimand and method, with bootstrap intervals.
 
     The design (levels, knots) is learned once on the whole cohort; the point estimate uses unit
@@ -291,8 +340,9 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
     progress : None (a bar on stderr when it is a terminal), True/False, or ``f(done, total)``.
     start_method : the worker pool's start method, 'fork' (default where available) or 'spawn'
         (which re-imports the caller's main module: guard it with ``if __name__ == "__main__"``).
+    periods : periods.parquet (CONTRACTS §5g), needed when the protocol asks for per protocol.
     """
-    point = point_estimate(cohort, protocol)
+    point = point_estimate(cohort, protocol, periods)
     boot = bootstrap_replicates(cohort, protocol, point, workers=workers, progress=progress,
-                                start_method=start_method)
+                                start_method=start_method, periods=periods)
     return gather_effects(point, [boot], protocol)

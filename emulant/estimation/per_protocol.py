@@ -40,7 +40,9 @@ from emulant.models.treatment_process import (
     DEVIATION_DAY,
     AdherenceWeights,
     PersonPeriods,
+    adherence_weights,
     period_basis,
+    weight_summary,
 )
 
 CONTRAST = "per_protocol"
@@ -183,3 +185,18 @@ def per_protocol_estimates(sample, pp: PersonPeriods, adherence: AdherenceWeight
             rows += c.contrast_rows(est, "standardization", risk)
             curve_rows += c.curve_rows(est, "standardization", curves)
     return rows, curve_rows, problems
+
+
+def sample_adherence(sample, pp: PersonPeriods) -> AdherenceWeights:
+    """The weights over time of one sample (point estimate or replicate), refitted with its
+    frequency weights, on its baseline weights, with ``analysis.weights`` (stabilise, truncate)."""
+    ws = sample.protocol.analysis.weights
+    return adherence_weights(pp, sample.a, sample.X, sample.freq, sample.weights,
+                             truncate=ws.truncate, stabilize=ws.stabilize)
+
+
+def adherence_summary(sample, pp: PersonPeriods, adherence: AdherenceWeights):
+    """Per estimand, arm and period: persons, on protocol, deviating, and the ``ipw`` weights
+    (mean, 1st/99th percentile, max) — the table behind the report's per-protocol section."""
+    return weight_summary(pp, sample.a, {1: sample.treated_arm, 0: sample.comparator_arm},
+                          adherence.weights)

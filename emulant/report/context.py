@@ -12,7 +12,7 @@ from typing import Any
 
 from emulant.protocol import Protocol, outcome_name
 from emulant.protocol.as_input import as_input_yaml
-from emulant.report import decision, figures, fmt, narrative, results, tables, target
+from emulant.report import adherence, decision, figures, fmt, narrative, results, tables, target
 from emulant.report import disclosure as dc
 from emulant.report.compact import compact_tables
 from emulant.report.curve_steps import curve_rule_text
@@ -33,6 +33,7 @@ SECTIONS = (
     ("positivity", "Propensity overlap and weights"),
     ("results", "Results"),
     ("subgroups", "Effects by subgroup"),
+    ("per-protocol", "Per protocol: staying on the strategies"),
     ("assumptions", "Assumptions"),
     ("target-checklist", "TARGET checklist"),
     ("since-previous", "Since the previous run"),
@@ -40,7 +41,7 @@ SECTIONS = (
     ("protocol", "Appendix: the protocol as parsed"),
     ("codelists", "Appendix: code lists"),
 )
-DESIGN_OMITS = {"results", "since-previous", "decision", "subgroups"}
+DESIGN_OMITS = {"results", "per-protocol", "since-previous", "decision", "subgroups"}
 
 
 def comparison_context(cmp: dict, protocol: Protocol) -> dict:
@@ -159,11 +160,20 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
             raw["subgroup_estimates"], est, (raw["bootstrap"] or {}).get("subgroups"), p)
         events = results.events_by_arm(raw["cohort"], est, p)
         ctx["comparison"] = comparison_context(comparison, p) if comparison else None
+        pp = adherence.section(raw, p)
+        if pp is not None:
+            pp["estimates"] = results.estimates(est, p, "per_protocol") if est is not None else None
+            pp["curves"] = results.curves(cv, p, contrast="per_protocol") if cv is not None else None
+            for i, c in enumerate(pp["curves"] or []):
+                c["svg"] = figures.curves_figure(c["panels"], prefix=f"fig-pp-curves{i}")
+            pp["on_protocol_svg"] = (figures.on_protocol_figure(pp["on_protocol"])
+                                     if pp["on_protocol"] else None)
+        ctx["pp"] = pp
     else:
         ctx.update(estimates=None, compact=None, negative_controls=[], curves=None, censoring=None,
                    decision=None, subgroups=None,
                    measured_missing=[],
-                   bootstrap=None, comparison=None)
+                   bootstrap=None, comparison=None, pp=None)
 
     ctx["warnings"] = narrative.warnings(p, raw, events, design, ctx["negative_controls"])
     ctx["glance"] = glance(ctx, raw, p, design)
@@ -176,6 +186,10 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
                                 if ncs else None)
     ctx["trial"] = narrative.emulation_rows(p, att, ctx["bootstrap"], design)
     ctx["assumptions"] = narrative.assumptions(p, ctx, design)
+    if ctx["pp"] is not None:
+        ctx["assumptions"] += adherence.assumptions(p, ctx["pp"])
+        ctx["warnings"] += [{"section": "per-protocol", "text": w}
+                            for w in ctx["pp"]["weight_warnings"]]
     ctx["manifest"] = manifest_context(manifest) if manifest else None
     ctx["protocol_yaml"] = as_input_yaml(p)
     ctx["codelists"] = codelists(p)
@@ -196,5 +210,6 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
     ctx["sections"] = [{"id": sid, "title": t} for sid, t in SECTIONS
                        if not (design and sid in DESIGN_OMITS)
                        and not (sid == "since-previous" and not ctx["comparison"])
-                       and not (sid in ("decision", "subgroups") and not ctx.get(sid))]
+                       and not (sid in ("decision", "subgroups") and not ctx.get(sid))
+                       and not (sid == "per-protocol" and not ctx.get("pp"))]
     return ctx

@@ -235,3 +235,24 @@ def curves_figure(panels: Sequence[dict], prefix: str = "fig-curves",
                                             for i, t in enumerate(ticks)], fontsize=7.5)
             ax.legend(fontsize=7.5, frameon=False, loc="upper left")
         return to_svg(fig, prefix)
+
+
+def on_protocol_figure(arms: Sequence[dict], prefix: str = "fig-on-protocol") -> str:
+    """Share still on protocol among those under follow-up, per arm, by period start day.
+
+    ``arms``: dicts with ``name``, ``day`` and ``share`` (lists, already cut where a period has
+    too few persons to show).
+    """
+    with matplotlib.rc_context(RC):
+        fig = _figure(7.0, 2.6)
+        ax = fig.subplots()
+        for j, arm in enumerate(arms):
+            if arm["day"]:
+                ax.step(arm["day"], arm["share"], where="post", color=ARM_COLOURS[j % 2], lw=1.4,
+                        label=_t(arm["name"]))
+        ax.set_ylim(0, 1.02)
+        ax.set_xlabel("days since time zero (period start)")
+        ax.set_ylabel("share on protocol")
+        ax.grid(color="#E5E5E5", lw=0.5)
+        ax.legend(fontsize=7.5, frameon=False, loc="lower left")
+        return to_svg(fig, prefix)

@@ -59,7 +59,7 @@ def outcome_columns(protocol: Protocol) -> list[str]:
         out += [col.end_day(o), col.end_reason(o)]
     for m in protocol.outcomes.measured():
         out += [col.measured(m.measure), col.died_before(m.measure)]
-    return out
+    return out + ["deviation_day", "deviation_reason"]
 
 
 def read_cohort(path: Path, protocol: Protocol, design: bool) -> pd.DataFrame:
@@ -121,4 +121,8 @@ def read_results(results_dir: str | Path, protocol: Protocol, design: bool) -> d
                               "at_risk")) if p.is_file() else None)
     p = d / "bootstrap.json"
     out["bootstrap"] = _json(p) if p.is_file() else None
+    p = d / "adherence.csv"
+    out["adherence"] = (_csv(p, ("estimand", "arm", "period", "start_day", "persons",
+                                 "on_protocol", "deviating", "weight_mean", "weight_p01",
+                                 "weight_p99", "weight_max")) if p.is_file() else None)
     return out

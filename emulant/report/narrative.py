@@ -50,6 +50,20 @@ def _outcome(p: Protocol, o: str | MeasuredOutcome) -> str:
     return f"{_concept(p, o)}, first record from day 1"
 
 
+def _per_protocol_text(p: Protocol) -> str:
+    """What the per-protocol contrast did: the adherence rules and the weighting."""
+    rules = "; ".join(
+        f"{a.name}: stops after a supply gap of more than {a.sustain.gap_days} days"
+        + (f", switches on a record of {', '.join(a.sustain.switch)}" if a.sustain.switch else "")
+        for a in p.strategies.arms if a.sustain is not None)
+    tv = ", ".join(c.name for c in p.time_varying) or "none"
+    return (f" Per protocol: follow-up ends on the day a person deviates ({rules}); the "
+            "unadjusted estimate is that artificially censored analysis; ipw and "
+            "standardization weight each period by the inverse probability of having stayed on "
+            "protocol given the baseline and time-varying covariates "
+            f"({tv}; {p.analysis.period_days}-day periods), stabilised.")
+
+
 def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | None,
                    design: bool) -> list[dict]:
     """One row per trial component: the protocol's free text and what this run did."""
@@ -94,7 +108,8 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
                     + (" Negative controls: " + ", ".join(p.outcomes.negative_controls) + "."
                        if p.outcomes.negative_controls else "")),
         "contrast": (f"{', '.join(c.replace('_', '-') for c in p.contrasts)} effect of "
-                     f"{s.treated} versus {s.comparator}; estimands {', '.join(p.estimands)}."),
+                     f"{s.treated} versus {s.comparator}; estimands {', '.join(p.estimands)}."
+                     + (_per_protocol_text(p) if p.per_protocol else "")),
         "analysis": (f"Methods: unadjusted, {', '.join(a.methods)}. Horizons: "
                      f"{', '.join(str(h) for h in a.horizons_days)} days."
                      f"{' Hazard ratio: yes.' if a.hazard_ratio else ''} Bootstrap: "

@@ -50,12 +50,22 @@ def small_event_arms(est: pd.DataFrame, min_cell: int) -> set[tuple[str, str]]:
     return out
 
 
-def estimates(est: pd.DataFrame, protocol: Protocol) -> list[dict]:
-    """Estimates grouped by outcome, then estimand (unadjusted first), rows by method/horizon.
+def of_contrast(df: pd.DataFrame, contrast: str) -> pd.DataFrame:
+    """The rows of one contrast (all rows when the file has no ``contrast`` column)."""
+    if "contrast" not in df.columns:
+        return df if contrast == "intention_to_treat" else df.iloc[0:0]
+    return df[df["contrast"].fillna("intention_to_treat").astype(str) == contrast]
+
+
+def estimates(est: pd.DataFrame, protocol: Protocol,
+              contrast: str = "intention_to_treat") -> list[dict]:
+    """Estimates of one contrast grouped by outcome, then estimand (unadjusted first), rows by
+    method/horizon.
 
     A crude estimate of an outcome is not shown when an arm's crude event count is suppressed
     (it would give the count back as risk x n).
     """
+    est = of_contrast(est, contrast)
     m = protocol.report.min_cell
     names = [outcome_name(o) for o in protocol.outcomes.all()]
     names += [o for o in pd.unique(est["outcome"].astype(str)) if o not in names]
@@ -132,6 +142,7 @@ def negative_controls(est: pd.DataFrame | None, protocol: Protocol) -> list[dict
     out = []
     if est is None:
         return out
+    est = of_contrast(est, "intention_to_treat")
     for o in protocol.outcomes.negative_controls:
         g = est[(est["outcome"].astype(str) == o) & est["measure"].isin(list(NULL))
                 & (est["method"].astype(str) != "unadjusted")]
@@ -147,8 +158,9 @@ def negative_controls(est: pd.DataFrame | None, protocol: Protocol) -> list[dict
     return out
 
 
-def curves(cv: pd.DataFrame, protocol: Protocol, cohort: pd.DataFrame | None = None) -> list[dict]:
-    """Risk curves of the primary outcome per estimand (a figure each, a panel per method).
+def curves(cv: pd.DataFrame, protocol: Protocol, cohort: pd.DataFrame | None = None,
+           contrast: str = "intention_to_treat") -> list[dict]:
+    """Risk curves of the primary outcome of one contrast per estimand (a figure each, a panel per method).
 
     Each arm's curve keeps the days :func:`curve_steps.pooled_steps` allows (a step only where
     it pools at least ``min_cell`` events; none without the cohort's follow-up columns). Returns
@@ -157,6 +169,7 @@ def curves(cv: pd.DataFrame, protocol: Protocol, cohort: pd.DataFrame | None = N
     """
     m = protocol.report.min_cell
     arms = list(protocol.strategies.arm_names)
+    cv = of_contrast(cv, contrast)
     prim = outcome_name(protocol.outcomes.primary)
     if "outcome" in cv.columns:  # the primary outcome's curves; other outcomes are in curves.csv
         cv = cv[cv["outcome"].astype(str) == str(prim)]

@@ -177,3 +177,34 @@ def test_per_protocol_ipw_and_standardization_recover_the_simulated_truth():
     assert abs(rd["standardization"] - true_rd) < 0.03
     row, entry, exit_, st = intervals(pp, *per_protocol_arrays(cohort, "event"))
     assert (exit_ > entry).all() and st.sum() == (per_protocol_arrays(cohort, "event")[1] == 1).sum()
+
+
+def test_estimate_effects_adds_per_protocol_rows_with_bootstrap_intervals():
+    # the whole estimation stage with periods.parquet: per-protocol rows beside the
+    # intention-to-treat ones, the point estimate equal to the estimator called directly, and
+    # bootstrap intervals that refit the weights over time in every replicate
+    from emulant.estimation.effects import estimate_effects
+
+    cohort, periods, _ = _simulate(1500, 4)
+    cohort["arm"] = np.where(cohort.treated == 1, "drug_a", "drug_b")
+    protocol = two_arm_protocol(
+        "pp-e2e", extra_concepts={"marker": {"source": "measurements", "codes": ["MK1"]}},
+        strategies={"arms": {"drug_a": {"initiate": "drug_a", "sustain": {"gap_days": 30}},
+                             "drug_b": {"initiate": "drug_b", "sustain": {"gap_days": 30}}},
+                    "treated": "drug_a"},
+        follow_up={"max_days": HORIZON}, estimands=["ATE"],
+        contrasts=["intention_to_treat", "per_protocol"],
+        covariates=[{"name": "x", "attribute": "x"}],
+        time_varying=[{"name": "marker", "concept": "marker", "window": [-30, 0], "summary": "last"}],
+        analysis={"horizons_days": [HORIZON], "methods": ["ipw", "standardization"],
+                  "period_days": P, "hazard_ratio": False,
+                  "bootstrap": {"replicates": 12, "seed": 3}})
+    res = estimate_effects(cohort, protocol, workers=1, progress=False, periods=periods)
+    est = res.estimates
+    pp_rows = est[(est.contrast == "per_protocol") & (est.measure != "e_value")]
+    assert set(pp_rows.method) == {"unadjusted", "ipw", "standardization"}
+    assert pp_rows.se.notna().all() and (pp_rows.se > 0).all()
+    assert set(res.curves.contrast) == {"intention_to_treat", "per_protocol"}
+    assert res.bootstrap["failed"] == 0
+    with pytest.raises(Exception, match="periods.parquet"):
+        estimate_effects(cohort, protocol, workers=1, progress=False)

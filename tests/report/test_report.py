@@ -512,3 +512,42 @@ def test_unreadable_results_file_names_it(tmp_path):
 
 
 ROOT = Path(__file__).resolve().parents[2]
+
+
+def test_per_protocol_section_reads_its_files_and_keeps_contrasts_apart(tmp_path):
+    # the section shows what adherence.csv, estimates.csv (contrast per_protocol) and the
+    # cohort's deviation_reason hold; the intention-to-treat tables keep their own rows only
+    text = PROTOCOL.replace(
+        "arms: {class_a: {initiate: class_a}, class_b: {initiate: class_b}}",
+        "arms: {class_a: {initiate: class_a, sustain: {gap_days: 60}}, "
+        "class_b: {initiate: class_b, sustain: {gap_days: 60}}}"
+    ).replace("estimands: [ATE, ATT]",
+              "estimands: [ATE, ATT]\ncontrasts: [intention_to_treat, per_protocol]")
+    (tmp_path / "codelists").mkdir()
+    (tmp_path / "codelists" / "class_a.csv").write_text("code\nRXA1\n", encoding="utf-8")
+    (tmp_path / "protocol.yaml").write_text(text, encoding="utf-8")
+    protocol = load_protocol(tmp_path / "protocol.yaml")
+    d = tmp_path / "results"
+    write_results(d)
+    cohort = pd.read_parquet(d / "cohort.parquet")
+    cohort["deviation_reason"] = (["stopped"] * 9 + ["switched"] * 6 + [None] * 15) * 2
+    cohort.to_parquet(d / "cohort.parquet", index=False)
+    est = pd.read_csv(d / "estimates.csv")
+    pp = est[est.measure.isin(["risk", "risk_difference"])].assign(contrast="per_protocol")
+    pp.loc[pp.measure == "risk_difference", "estimate"] = 0.06789
+    pd.concat([est, pp]).to_csv(d / "estimates.csv", index=False)
+    rows = [{"estimand": "ATE", "arm": a, "period": k, "start_day": 30 * k, "persons": 30 - k,
+             "on_protocol": 30 - 2 * k, "deviating": 1, "weight_mean": 1.0 + 0.2 * k,
+             "weight_p01": 0.5, "weight_p99": 2.0, "weight_max": 3.0}
+            for a in ("class_a", "class_b") for k in range(3)]
+    pd.DataFrame(rows).to_csv(d / "adherence.csv", index=False)
+    html = render_report(d, protocol, tmp_path / "report.html").read_text(encoding="utf-8")
+    section = html[html.index('<section id="per-protocol">'):html.index('<section id="assumptions">')]
+    results = html[html.index('<section id="results">'):html.index('<section id="per-protocol">')]
+    assert "0.0679" in section and "0.0679" not in results
+    assert "fig-on-protocol" in section
+    assert ">stopped<" in section and ">switched<" in section
+    # 9 stopped per arm are shown; the mean weight 1.4 in period 2 is flagged as a warning
+    assert "Per-protocol weights (ATE, class_a): the mean is 1.40 in period 2" in html
+    assert "No unmeasured time-varying confounding of adherence" in html
+    assert "Per protocol: follow-up ends on the day a person deviates" in html
