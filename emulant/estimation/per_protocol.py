@@ -11,17 +11,18 @@ horizons and day grid are those of :mod:`emulant.estimation.tte`. Methods:
   :mod:`emulant.models.treatment_process` (the estimand's baseline weight times the stabilised
   inverse probability of having stayed on protocol), on counting-process intervals
   (:func:`emulant.estimation.survival.aalen_johansen_intervals`).
-* ``standardization``: pooled logistic hazards of the outcome (and the competing event) on the
-  artificially censored person-periods, weighted by :math:`W_k`, with the arm, the arm by a
-  period spline and the baseline covariates; each person's cumulative incidence under each arm
-  (:func:`emulant.estimation.pooled_logistic.cumulative_incidence`) averaged over the estimand's
+* ``standardization``: pooled logistic daily hazards of the outcome (and the competing event),
+  constant within a period, on the artificially censored person-periods (each a binomial of its
+  days at risk), weighted by :math:`W_k`, with the arm, the arm by a period spline and the
+  baseline covariates; each person's cumulative incidence under each arm
+  (:func:`emulant.estimation.pooled_logistic.incidence_at`) averaged over the estimand's
   population (Hernán & Robins, *Causal Inference: What If*, §17.4 and ch. 21; Danaei et al. 2013,
   Stat Methods Med Res 22:70).
 
-Periods follow CONTRACTS §5a: period :math:`k` holds days :math:`kP .. (k+1)P-1`. In the pooled
-model a person with an event on day :math:`T` is at risk in periods :math:`0..\\lfloor T/P
-\\rfloor`; a censored person in the periods observed to their end, :math:`0..\\lfloor (T+1)/P
-\\rfloor - 1`. A period's risk is read at day :math:`(k+1)P` (the last one at ``max_days``).
+The weights follow the periods of CONTRACTS §5a (period :math:`k` holds days
+:math:`kP .. (k+1)P-1`); the daily hazard model counts days as
+:mod:`emulant.estimation.pooled_logistic` does (days :math:`kP+1 .. (k+1)P`), each day-period
+taking the weight of the §5a period of its first day.
 Hazard ratios are not estimated per protocol (a weighted Cox model with weights varying over
 time is not built here).
 """
@@ -30,8 +31,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from emulant.estimation.events import COMPETING, OUTCOME, SurvivalError
-from emulant.estimation.pooled_logistic import cumulative_incidence
+from emulant.estimation.events import COMPETING, SurvivalError
+from emulant.estimation.pooled_logistic import days_at_risk, incidence_at
 from emulant.estimation.survival import aalen_johansen_intervals, step_at
 from emulant.estimation.tte import OutcomeContext, outcome_arrays
 from emulant.estimation.tte_weighting import standardized_risks, target_weights
@@ -104,18 +105,20 @@ def ipw_curves(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndarray):
     return curves, risk
 
 
-def _long(time, status, P: int, K: int):
-    """Person-periods of the pooled model: ``(person, k, outcome, competing)`` per row."""
-    s = np.asarray(status)
-    event_last = np.floor(time / P)
-    cens_last = np.floor((time + 1) / P) - 1
-    last = np.minimum(np.where(s != 0, event_last, cens_last), K - 1).astype(int)
-    n_rows = last + 1
-    person = np.repeat(np.arange(s.size), np.maximum(n_rows, 0))
-    first = np.repeat(np.cumsum(np.maximum(n_rows, 0)) - np.maximum(n_rows, 0), np.maximum(n_rows, 0))
-    k = np.arange(person.size) - first
-    final = k == last[person]
-    return person, k, final & (s[person] == OUTCOME), final & (s[person] == COMPETING)
+def _long(days, event, P: int, K: int):
+    """Person-periods of a daily hazard model: ``(person, k, at_risk_days, event)`` per row.
+
+    A person at risk on days :math:`1..d` is at risk :math:`\\min(P, d - kP)` days of period
+    :math:`k` (days :math:`kP+1 .. (k+1)P`, the convention of
+    :mod:`emulant.estimation.pooled_logistic`); the event falls on day :math:`d`.
+    """
+    d = np.minimum(np.asarray(days, dtype=float), K * P)
+    n_rows = np.ceil(d / P).astype(int)
+    person = np.repeat(np.arange(d.size), n_rows)
+    k = np.arange(person.size) - np.repeat(np.cumsum(n_rows) - n_rows, n_rows)
+    m = np.clip(d[person] - k * P, 0, P)
+    ev = np.asarray(event, dtype=bool)[person] & (k == n_rows[person] - 1)
+    return person, k, m, ev
 
 
 def _hazard(Z, y, f, what: str, problems: list[str]):
@@ -125,8 +128,23 @@ def _hazard(Z, y, f, what: str, problems: list[str]):
     return model
 
 
+def _daily_model(c: OutcomeContext, pp: PersonPeriods, w_rows, name: str, K: int, Bk,
+                 problems: list[str]):
+    """A weighted pooled logistic model of the daily hazard: each person-period is a binomial
+    of its days at risk, written as two weighted Bernoulli rows (event days, other days)."""
+    days, event = days_at_risk(np.minimum(c.time, c.max_days), c.status, name)
+    person, k, m, ev = _long(days, event, c.P, K)
+    w = c.f[person] * w_rows[_row_of(pp, np.minimum(k, pp.n_periods - 1), person)]
+    a = c.a[person].astype(float)
+    Z = np.column_stack([a, Bk[k], a[:, None] * Bk[k], c.X[person]])
+    y = np.r_[np.ones(int(ev.sum())), np.zeros(person.size)]
+    f = np.r_[w[ev], w * (m - ev)]
+    keep = f > 0
+    return _hazard(np.vstack([Z[ev], Z])[keep], y[keep], f[keep], name, problems)
+
+
 def _predict(model, B: np.ndarray, X: np.ndarray, g: int) -> np.ndarray:
-    """:math:`h_i(k)` for everyone had they been in arm ``g`` (n x K)."""
+    """Daily :math:`h_i(k)` for everyone had they been in arm ``g`` (n x K)."""
     q = B.shape[1]
     coef = model.coef_
     time_part = g * coef[0] + B @ coef[1:1 + q] + g * (B @ coef[1 + q:1 + 2 * q])
@@ -136,24 +154,23 @@ def _predict(model, B: np.ndarray, X: np.ndarray, g: int) -> np.ndarray:
 
 def standardized_incidence(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndarray,
                            problems: list[str]) -> dict[int, np.ndarray]:
-    """Each person's cumulative incidence under each arm at the period ends (n x K)."""
-    K = int(c.max_days // c.P) + 1
-    person, k, out, comp = _long(c.time, c.status, c.P, K)
-    f = c.f[person] * w_rows[_row_of(pp, k, person)]
-    use = f > 0
-    person, k, out, comp, f = person[use], k[use], out[use], comp[use], f[use]
+    """Each person's cumulative incidence under each arm on the grid, then at the horizons.
+
+    Daily hazards constant within each period (:func:`emulant.estimation.pooled_logistic.
+    incidence_at`); a day-period's weight is that of the person's period of CONTRACTS §5a
+    holding its first day.
+    """
+    K = max(1, -(-int(c.max_days) // c.P))
     Bk = period_basis(np.arange(K), K)
-    a = c.a[person].astype(float)
-    Z = np.column_stack([a, Bk[k], a[:, None] * Bk[k], c.X[person]])
-    models = {"outcome": _hazard(Z, out, f, "outcome", problems)}
-    if c.competing and comp.any():
-        keep = ~out
-        models["competing"] = _hazard(Z[keep], comp[keep], f[keep], "competing-event", problems)
+    models = {"outcome": _daily_model(c, pp, w_rows, "outcome", K, Bk, problems)}
+    if c.competing and np.any(c.status == COMPETING):
+        models["competing"] = _daily_model(c, pp, w_rows, "competing", K, Bk, problems)
+    days = np.concatenate([c.grid, np.asarray(c.horizons, dtype=float)])
     inc = {}
     for g in (0, 1):
         h = _predict(models["outcome"], Bk, c.X, g)
         hc = _predict(models["competing"], Bk, c.X, g) if "competing" in models else None
-        inc[g] = cumulative_incidence(h, hc)
+        inc[g] = incidence_at(h, hc, days, c.P)
     return inc
 
 
@@ -181,7 +198,7 @@ def per_protocol_estimates(sample, pp: PersonPeriods, adherence: AdherenceWeight
             w_cond = np.asarray(adherence.conditional[est], dtype=float)
             inc = standardized_incidence(c, pp, w_cond, problems)
             v = target_weights(est, c.a, c.e, c.f)
-            curves, risk = standardized_risks(inc, v, c.grid, c.horizons, c.P, c.max_days)
+            curves, risk = standardized_risks(inc, v, c.grid.size, c.horizons)
             rows += c.contrast_rows(est, "standardization", risk)
             curve_rows += c.curve_rows(est, "standardization", curves)
     return rows, curve_rows, problems
