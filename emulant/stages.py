@@ -149,8 +149,10 @@ def check_balance(input: Any, output: Any, params: Any) -> None:
 
 def _periods(input: Any) -> pd.DataFrame | None:
     """periods.parquet when the rule has it as an input (the per-protocol contrast)."""
-    path = getattr(input, "periods", None)
-    return pd.read_parquet(path) if path else None
+    files = getattr(input, "periods", None)
+    if not files:
+        return None
+    return pd.read_parquet(files if isinstance(files, str | Path) else files[0])
 
 
 def estimate_point(input: Any, output: Any, params: Any) -> None:

@@ -12,6 +12,7 @@ import dataclasses
 import math
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
 from emulant.protocol import load_protocol, outcome_name
@@ -48,8 +49,11 @@ def test_example_runs_on_a_small_extract(path, extract, tmp_path):
         cohort = add_deviations(open_extract(extract, p), p, res.cohort)
         assert cohort["deviation_reason"].isin(["stopped"]).any() and cohort["deviation_reason"].isin(["switched"]).any()
         assert build_periods(open_extract(extract, p), p, cohort, tmp_path / "periods.parquet") > len(cohort)
+        periods = pd.read_parquet(tmp_path / "periods.parquet")
+    else:
+        cohort, periods = res.cohort, None
     fit_weights(res.cohort, p)
-    est = estimate_effects(res.cohort, p, workers=1).estimates
+    est = estimate_effects(cohort, p, workers=1, periods=periods).estimates
     primary = est[est["outcome"] == outcome_name(p.outcomes.primary)]
     assert set(primary["method"]) >= {"unadjusted", *p.analysis.methods}
     assert all(math.isfinite(x) for x in primary["estimate"])

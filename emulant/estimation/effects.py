@@ -61,6 +61,8 @@ ESTIMATE_COLUMNS = ("outcome", "contrast", "estimand", "method", "measure", "hor
                     "subgroup")  # subgroup: last, empty for the whole cohort (CONTRACTS §5f)
 CURVE_COLUMNS = ("contrast", "estimand", "method", "arm", "day", "risk", "ci_low", "ci_high",
                  "at_risk")
+ADHERENCE_COLUMNS = ("estimand", "arm", "period", "start_day", "persons", "on_protocol",
+                     "deviating", "weight_mean", "weight_p01", "weight_p99", "weight_max")
 EffectsError = EstimationError  # the same class under the module's name
 
 
@@ -277,9 +279,12 @@ def point_estimate(cohort: pd.DataFrame, protocol: Protocol,
 
 def adherence_table(cohort: pd.DataFrame, protocol: Protocol,
                     periods: pd.DataFrame) -> pd.DataFrame:
-    """The point estimate's weights over time summarised per estimand, arm and period."""
-    design, X, _, _ = _prepare(cohort, protocol)
+    """The point estimate's weights over time summarised per estimand, arm and period
+    (``adherence.csv``; the header alone when the protocol does not ask for per protocol)."""
     person_time = person_time_of(cohort, protocol, periods)
+    if person_time is None:
+        return pd.DataFrame(columns=list(ADHERENCE_COLUMNS))
+    design, X, _, _ = _prepare(cohort, protocol)
     point = build_sample(cohort, protocol, design, X)
     return adherence_summary(point, person_time, sample_adherence(point, person_time))
 

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from emulant.columns import DEVIATION_DAY
 from emulant.estimation.events import COMPETING, SurvivalError
 from emulant.estimation.pooled_logistic import days_at_risk, incidence_at
 from emulant.estimation.survival import aalen_johansen_intervals, step_at
@@ -38,7 +39,6 @@ from emulant.estimation.tte import OutcomeContext, outcome_arrays
 from emulant.estimation.tte_weighting import standardized_risks, target_weights
 from emulant.models.propensity import PropensityModel
 from emulant.models.treatment_process import (
-    DEVIATION_DAY,
     AdherenceWeights,
     PersonPeriods,
     adherence_weights,

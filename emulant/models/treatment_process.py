@@ -55,13 +55,13 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from emulant.columns import DEVIATION_DAY
 from emulant.errors import EmulantError
 from emulant.models.design import build_design, rcs_basis
 from emulant.models.propensity import PropensityModel, PropensityWarning
 from emulant.models.weights import weighted_quantile
 
 PERSON_ID, PERIOD, START_DAY = "person_id", "period", "start_day"
-DEVIATION_DAY = "deviation_day"  # cohort.parquet (CONTRACTS §5b)
 KNOTS = (0.05, 0.275, 0.5, 0.725, 0.95)  # of the period indices 0..K-1 (Harrell 2015, §2.4.5)
 
 

@@ -5,9 +5,11 @@
 rule estimate_point:
     input:
         cohort=result("cohort.parquet"),
+        periods=person_time_results(),
         protocol=PROTOCOL_FILES,
     output:
         point=result("bootstrap/point.json"),
+        adherence=result("adherence.csv"),
     resources:
         mem_mb=mem_mb("estimate_point"),
         runtime=runtime("estimate_point"),
@@ -20,6 +22,7 @@ rule estimate_point:
 rule bootstrap_chunk:
     input:
         cohort=result("cohort.parquet"),
+        periods=person_time_results(),
         point=result("bootstrap/point.json"),
         protocol=PROTOCOL_FILES,
     output:

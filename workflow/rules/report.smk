@@ -11,6 +11,7 @@ rule render_report:
         # rerender (ancient); the point estimate, which changes with anything they depend on,
         # does.
         point=result("bootstrap/point.json"),
+        adherence=result("adherence.csv"),
         estimates=ancient(result("estimates.csv")),
         curves=ancient(result("curves.csv")),
         bootstrap=ancient(result("bootstrap.json")),
