@@ -29,6 +29,8 @@ time is not built here).
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 
 from emulant.columns import DEVIATION_DAY
@@ -37,7 +39,7 @@ from emulant.estimation.pooled_logistic import days_at_risk, incidence_at
 from emulant.estimation.survival import aalen_johansen_intervals, step_at
 from emulant.estimation.tte import OutcomeContext, outcome_arrays
 from emulant.estimation.tte_weighting import standardized_risks, target_weights
-from emulant.models.propensity import PropensityModel
+from emulant.models.propensity import PropensityModel, PropensityWarning
 from emulant.models.treatment_process import (
     AdherenceWeights,
     PersonPeriods,
@@ -122,7 +124,9 @@ def _long(days, event, P: int, K: int):
 
 
 def _hazard(Z, y, f, what: str, problems: list[str]):
-    model = PropensityModel().fit(Z, y.astype(float), sample_weight=f)
+    with warnings.catch_warnings():  # separation: the ridge refit of PropensityModel handles it
+        warnings.simplefilter("ignore", PropensityWarning)
+        model = PropensityModel().fit(Z, y.astype(float), sample_weight=f)
     if not model.converged_:
         problems.append(f"per-protocol {what} hazard model did not converge")
     return model

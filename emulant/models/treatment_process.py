@@ -149,11 +149,12 @@ def period_basis(period: np.ndarray, n_periods: int) -> np.ndarray:
 
 def _fit_stay(Z: np.ndarray, stay: np.ndarray, f: np.ndarray, what: str) -> tuple[np.ndarray, bool]:
     """Fitted probability of staying from one pooled logistic model (frequency weights ``f``)."""
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", PropensityWarning)
+    with warnings.catch_warnings():
+        # separation (a period or covariate pattern in which no one deviates) is met by the
+        # model's ridge refit (see PropensityModel); only a fit that does not converge fails
+        warnings.simplefilter("ignore", PropensityWarning)
         model = PropensityModel().fit(Z, stay, sample_weight=f)
-    ok = bool(model.converged_) and not caught
-    return np.asarray(model.predict(Z), dtype=float), ok
+    return np.asarray(model.predict(Z), dtype=float), bool(model.converged_)
 
 
 def staying_probabilities(pp: PersonPeriods, a: np.ndarray, X: np.ndarray, freq: np.ndarray
@@ -164,7 +165,7 @@ def staying_probabilities(pp: PersonPeriods, a: np.ndarray, X: np.ndarray, freq:
 
     Rows not on protocol, rows of persons with frequency 0, and periods in which no one of the
     arm deviates get probability 1. Returns ``(probabilities, problems)``; ``problems`` names
-    each model that did not converge or met separation.
+    each model that did not converge.
     """
     a_r = np.asarray(a)[pp.person]
     f_r = np.asarray(freq, dtype=float)[pp.person]
@@ -186,8 +187,7 @@ def staying_probabilities(pp: PersonPeriods, a: np.ndarray, X: np.ndarray, freq:
             out[name][fit] = p
             if not ok:
                 problems.append(f"treatment-process model '{name}' (arm "
-                                f"{'treated' if g else 'comparator'}) did not converge or met "
-                                "separation")
+                                f"{'treated' if g else 'comparator'}) did not converge")
     return out, problems
 
 
