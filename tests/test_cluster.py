@@ -14,6 +14,7 @@ import os
 import shutil
 import subprocess
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -27,13 +28,16 @@ pytestmark = pytest.mark.cluster
 
 
 @pytest.fixture(scope="module")
-def slurm_env() -> dict[str, str]:
+def slurm_env() -> Iterator[dict[str, str]]:
     run = subprocess.run(["bash", str(START), "start"], capture_output=True, text=True, timeout=180)
     if run.returncode == 3:
         pytest.skip(run.stderr.strip())
     assert run.returncode == 0, run.stderr
     conf = run.stdout.strip().rsplit("=", 1)[-1]
-    return {**os.environ, "SLURM_CONF": conf}
+    yield {**os.environ, "SLURM_CONF": conf}
+    # stop the daemons this test started; a failure to stop them is no failure of the test
+    subprocess.run(["bash", str(START), "stop"], capture_output=True, text=True, timeout=120,
+                   check=False)
 
 
 def _workdir(tmp: Path) -> Path:
