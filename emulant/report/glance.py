@@ -12,11 +12,10 @@ from typing import Any
 
 import pandas as pd
 
-from emulant import columns as col
 from emulant.protocol import MeasuredOutcome, Protocol, outcome_name
 from emulant.report import disclosure as dc
 from emulant.report import fmt
-from emulant.report.results import METHOD_LABEL
+from emulant.report.results import METHOD_LABEL, end_reasons_by_arm
 
 ESTIMAND_WORDS = {"ATE": "in the whole eligible population (ATE)",
                   "ATT": "in those who started {treated} (ATT)",
@@ -170,15 +169,11 @@ CENSORING_GAP_PP = 10.0  # arms' shares censored at coverage end differing by mo
 def censoring_gap(cohort: pd.DataFrame | None, protocol: Protocol) -> tuple[dict, float] | None:
     """Share of each arm whose primary-outcome follow-up ended at coverage end, and the largest
     difference between arms in percentage points (``None`` without the cohort's end reasons)."""
-    prim = protocol.outcomes.primary
-    if cohort is None or not isinstance(prim, str):
-        return None
-    reason = col.end_reason(prim) if col.end_reason(prim) in cohort else "end_reason"
-    if reason not in cohort:
+    by_arm = end_reasons_by_arm(cohort, protocol)
+    if by_arm is None:
         return None
     share = {}
-    for a in protocol.strategies.arm_names:
-        s = cohort.loc[cohort["arm"].astype(str) == a, reason].astype(str)
+    for a, s in by_arm.items():
         if len(s):
             share[a] = 100.0 * float((s == "coverage_end").mean())
     if len(share) < 2:

@@ -215,27 +215,36 @@ def curves(cv: pd.DataFrame, protocol: Protocol, cohort: pd.DataFrame | None = N
     return out
 
 
-def censoring(cohort: pd.DataFrame | None, protocol: Protocol) -> dict | None:
-    """End-of-follow-up reasons by arm for the primary time-to-event outcome (suppressed)."""
+def end_reasons_by_arm(cohort: pd.DataFrame | None, protocol: Protocol) -> dict[str, pd.Series] | None:
+    """Each arm's end-of-follow-up reasons for the primary time-to-event outcome (``None``
+    without a time-to-event primary outcome or the cohort's end reasons)."""
     prim = protocol.outcomes.primary
     if cohort is None or not isinstance(prim, str):
         return None
     reason = col.end_reason(prim) if col.end_reason(prim) in cohort else "end_reason"
     if reason not in cohort:
         return None
+    return {a: cohort.loc[cohort["arm"].astype(str) == a, reason].astype(str)
+            for a in protocol.strategies.arm_names}
+
+
+def censoring(cohort: pd.DataFrame | None, protocol: Protocol) -> dict | None:
+    """End-of-follow-up reasons by arm for the primary time-to-event outcome (suppressed)."""
+    by_arm = end_reasons_by_arm(cohort, protocol)
+    if by_arm is None:
+        return None
     m = protocol.report.min_cell
-    arms = list(protocol.strategies.arm_names)
+    arms = list(by_arm)
     reasons = list(col.END_REASONS)
     table = []
     cells: dict[str, list[str]] = {}
-    for a in arms:
-        s = cohort.loc[cohort["arm"].astype(str) == a, reason].astype(str)
+    for a, s in by_arm.items():
         counts = [int((s == r).sum()) for r in reasons]
         hid = dc.suppress_cells(counts, m, not dc.is_small(len(s), m))
         cells[a] = [_cell(c, len(s), m, h) for c, h in zip(counts, hid, strict=True)]
     for i, r in enumerate(reasons):
         table.append({"reason": r.replace("_", " "), "cells": [cells[a][i] for a in arms]})
-    return {"outcome": prim, "arms": arms, "rows": table}
+    return {"outcome": protocol.outcomes.primary, "arms": arms, "rows": table}
 
 
 def _cell(n: int, total: int, m: int, hidden: bool) -> str:
