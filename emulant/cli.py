@@ -266,6 +266,13 @@ def cmd_pdf(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _duckdb_options(parser: argparse.ArgumentParser) -> None:
+    """The DuckDB settings a command that reads the extract takes."""
+    parser.add_argument("--threads", type=int, metavar="N", help="DuckDB threads (default 2)")
+    parser.add_argument("--memory-limit", metavar="SIZE", help="DuckDB memory limit, e.g. 4GB")
+    parser.add_argument("--temp-dir", metavar="DIR", help="where DuckDB spills to disk")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="emulant",
@@ -283,9 +290,7 @@ def build_parser() -> argparse.ArgumentParser:
     ck.add_argument("--extract", required=True, metavar="PATH", help="folder of the extract's tables")
     ck.add_argument("--protocol", required=True, metavar="FILE", help="the protocol YAML file")
     ck.add_argument("--save-check", metavar="FILE", help="also write the check as JSON (extract_check.json)")
-    ck.add_argument("--threads", type=int, metavar="N", help="DuckDB threads (default 2)")
-    ck.add_argument("--memory-limit", metavar="SIZE", help="DuckDB memory limit, e.g. 4GB")
-    ck.add_argument("--temp-dir", metavar="DIR", help="where DuckDB spills to disk")
+    _duckdb_options(ck)
     ck.set_defaults(func=cmd_check)
 
     sy = sub.add_parser("synth", help="write the invented demo extract, its protocol and truth",
@@ -322,9 +327,7 @@ def build_parser() -> argparse.ArgumentParser:
     dr.add_argument("--prefix-length", type=int, default=3, metavar="K",
                     help="characters of a code prefix (default 3)")
     dr.add_argument("--force", action="store_true", help="overwrite --out when it exists")
-    dr.add_argument("--threads", type=int, metavar="N", help="DuckDB threads (default 2)")
-    dr.add_argument("--memory-limit", metavar="SIZE", help="DuckDB memory limit, e.g. 4GB")
-    dr.add_argument("--temp-dir", metavar="DIR", help="where DuckDB spills to disk")
+    _duckdb_options(dr)
     dr.set_defaults(func=cmd_draft)
 
     sc = sub.add_parser("schema", help="print the protocol's JSON Schema (for editors)",
