@@ -144,6 +144,23 @@ def person_covariate_sql(cov: Covariate, time_zero: str, person: str) -> str | N
     return None
 
 
+def merged_coverage_sql(persons: str) -> str:
+    """Coverage periods of the persons in table ``persons`` merged where they overlap or touch
+    (next start <= running max end + 1 day), a gaps-and-islands pass: ``person_id, s, e``."""
+    return f"""
+        WITH c AS (
+            SELECT v.person_id, v.start_date AS s, v.end_date AS e
+            FROM coverage v WHERE v.person_id IN (SELECT person_id FROM {persons})
+              AND v.start_date IS NOT NULL AND v.end_date IS NOT NULL),
+        o AS (
+            SELECT *, max(e) OVER (PARTITION BY person_id ORDER BY s, e
+                ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) AS prev_end FROM c),
+        g AS (
+            SELECT *, sum(CASE WHEN prev_end IS NULL OR s > prev_end + 1 THEN 1 ELSE 0 END)
+                OVER (PARTITION BY person_id ORDER BY s, e ROWS UNBOUNDED PRECEDING) AS grp FROM o)
+        SELECT person_id, grp, min(s) AS s, max(e) AS e FROM g GROUP BY person_id, grp"""
+
+
 # ----------------------------------------------------------------------------- per-source plans
 
 
@@ -200,10 +217,14 @@ class Planner:
         return None
 
 
-def make_aggregates(con, ex: Extract, plans: dict[str, SourcePlan]) -> list[str]:
+def make_aggregates(con, ex: Extract, plans: dict[str, SourcePlan], init: str = "_c_init",
+                    keys: tuple[str, ...] = ()) -> list[str]:
     """One ``CREATE TEMP TABLE _c_agg_<n>`` per source: a single scan of the source joined to
-    time zero, every aggregate of its plan grouped by person; returns the table names."""
+    time zero (table ``init``), every aggregate of its plan grouped by person and ``keys`` (e.g.
+    ``trial`` for person-trials); returns the table names."""
     tables = []
+    by = ", ".join(("person_id", *keys))
+    ikeys = "".join(f", i.{k}" for k in keys)
     for n, plan in enumerate(plans.values()):
         if not plan.aggs:
             continue
@@ -215,13 +236,13 @@ def make_aggregates(con, ex: Extract, plans: dict[str, SourcePlan]) -> list[str]
         name = f"_c_agg_{n}"
         con.execute(f"""
             CREATE OR REPLACE TEMP TABLE {name} AS
-            SELECT person_id, {aggs} FROM (
-                SELECT s.person_id, date_diff('day', i.time_zero, s.date) AS day,
+            SELECT {by}, {aggs} FROM (
+                SELECT s.person_id{ikeys}, date_diff('day', i.time_zero, s.date) AS day,
                        {', '.join(extra + flags) or 'NULL AS nothing'}
-                FROM {q(plan.source)} s JOIN _c_init i ON i.person_id = s.person_id
+                FROM {q(plan.source)} s JOIN {init} i ON i.person_id = s.person_id
                 WHERE s.date BETWEEN i.time_zero + ({plan.lo}) AND i.time_zero + ({plan.hi}))
             WHERE {keep}
-            GROUP BY person_id""")
+            GROUP BY {by}""")
         tables.append(name)
     return tables
 

@@ -35,6 +35,7 @@ from emulant.cohort.covariates import (
     finish_covariates,
     lit,
     make_aggregates,
+    merged_coverage_sql,
     nearest_sql,
     person_covariate_sql,
     q,
@@ -95,21 +96,10 @@ def _make_init(con, ex: Extract, p: Protocol) -> None:
 
 
 def _make_coverage(con) -> None:
-    """Merge coverage periods that overlap or touch (next start <= running max end + 1 day), a
-    gaps-and-islands pass; keep the merged period holding day 0."""
-    con.execute("""
+    """The merged coverage period holding day 0 (:func:`merged_coverage_sql`)."""
+    con.execute(f"""
         CREATE OR REPLACE TEMP TABLE _c_cov AS
-        WITH c AS (
-            SELECT v.person_id, v.start_date AS s, v.end_date AS e
-            FROM coverage v JOIN _c_init i ON i.person_id = v.person_id
-            WHERE v.start_date IS NOT NULL AND v.end_date IS NOT NULL),
-        o AS (
-            SELECT *, max(e) OVER (PARTITION BY person_id ORDER BY s, e
-                ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) AS prev_end FROM c),
-        g AS (
-            SELECT *, sum(CASE WHEN prev_end IS NULL OR s > prev_end + 1 THEN 1 ELSE 0 END)
-                OVER (PARTITION BY person_id ORDER BY s, e ROWS UNBOUNDED PRECEDING) AS grp FROM o),
-        m AS (SELECT person_id, grp, min(s) AS s, max(e) AS e FROM g GROUP BY person_id, grp)
+        WITH m AS ({merged_coverage_sql('_c_init')})
         SELECT m.person_id, date_diff('day', i.time_zero, m.s) AS cov_start_day,
                date_diff('day', i.time_zero, m.e) AS coverage_end_day
         FROM m JOIN _c_init i ON i.person_id = m.person_id
@@ -304,11 +294,12 @@ def _end_sql(p: Protocol, od: str, has_comp: bool) -> tuple[str, str]:
     return end, reason + " ELSE 'coverage_end' END"
 
 
-def _cohort_frame(con, p: Protocol) -> pd.DataFrame:
+def _cohort_frame(con, p: Protocol, keys: tuple[str, ...] = ("person_id",)) -> pd.DataFrame:
+    """The cohort table from ``_c_all`` (one row per ``keys``: person, or person and trial)."""
     st = p.strategies
     arm = "CASE arm_idx " + " ".join(f"WHEN {i} THEN {lit(a)}" for i, a in
                                      enumerate(st.arm_names)) + " END"
-    sel = ["person_id", f"{arm} AS arm", f"CAST(arm_idx = {st.arm_names.index(st.treated)} "
+    sel = [*keys, f"{arm} AS arm", f"CAST(arm_idx = {st.arm_names.index(st.treated)} "
            "AS INTEGER) AS treated", "time_zero"]
     sel += [f"cv_{i} AS {q(c.name)}" for i, c in enumerate(p.covariates)]
     has_comp = bool(p.outcomes.competing)
@@ -325,9 +316,9 @@ def _cohort_frame(con, p: Protocol) -> pd.DataFrame:
                 f"CAST(md_{j} IS NOT NULL AS INTEGER) AS {q(C.died_before(m.measure))}"]
     sel.append("coverage_end_day")
     df = con.execute(f"SELECT {', '.join(sel)} FROM _c_all WHERE first_fail IS NULL "
-                     "ORDER BY person_id").df()
+                     f"ORDER BY {', '.join(keys)}").df()
     df = finish_covariates(df, p)
-    order = ["person_id", "arm", "treated", "time_zero"]
+    order = [*keys, "arm", "treated", "time_zero"]
     for c in p.covariates:
         order.append(c.name)
         if c.may_be_missing:
