@@ -62,6 +62,37 @@ def replicate_freq(n: int, seed: int, r: int, kind: str = "multinomial") -> np.n
     return rng.multinomial(n, np.full(n, 1.0 / n)).astype(float)
 
 
+def resampling_units(cohort) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """What the bootstrap resamples, and each row's weight before resampling.
+
+    A cohort of person-trials (a ``trial`` column, CONTRACTS §5c) resamples persons with all
+    their trials: ``clusters`` gives each row its person's index. A ``sample_weight`` column
+    (the inverse share of sampled non-initiators) multiplies every replicate's frequency
+    weights and is the point estimate's. Both are None for a cohort of one row per person
+    (every row resampled alone, unit weights). Resampling the independent units, not the
+    correlated rows, is the cluster bootstrap (Davison & Hinkley 1997, Bootstrap Methods and
+    their Application, §3.8).
+    """
+    clusters = base = None
+    if "trial" in cohort.columns:
+        clusters = np.unique(cohort["person_id"].to_numpy(), return_inverse=True)[1]
+    if "sample_weight" in cohort.columns:
+        base = cohort["sample_weight"].to_numpy(dtype=float)
+    return clusters, base
+
+
+def unit_freq(n: int, seed: int, r: int, kind: str, clusters: np.ndarray | None,
+              base: np.ndarray | None) -> np.ndarray:
+    """The row weights of replicate ``r``: :func:`replicate_freq` drawn per cluster (per row
+    when ``clusters`` is None) and given to its rows, times ``base``."""
+    if clusters is None:
+        freq = replicate_freq(n, seed, r, kind)
+    else:
+        freq = replicate_freq(int(clusters.max()) + 1 if len(clusters) else 0, seed, r,
+                              kind)[clusters]
+    return freq if base is None else freq * base
+
+
 def _norm(v: Any) -> Any:
     if v is None or (isinstance(v, float) and math.isnan(v)):
         return None
@@ -127,7 +158,7 @@ def _init_worker(state: dict[str, Any]) -> None:
 def _replicate(r: int) -> tuple[int, np.ndarray | None, np.ndarray | None, str | None]:
     """Run replicate ``r`` on the worker's shared state; a failure returns its reason."""
     s = _STATE
-    freq = replicate_freq(s["n"], s["seed"], r, s["kind"])
+    freq = unit_freq(s["n"], s["seed"], r, s["kind"], s.get("clusters"), s.get("base"))
     try:
         with np.errstate(all="ignore"), warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")  # kept to look for non-convergence, never shown
@@ -255,7 +286,8 @@ def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]
                   protocol, rows: list[dict], curves: list[dict], workers: int = 2,
                   progress: bool | Callable | None = None, start_method: str | None = None,
                   replicates: int | None = None, seed: int | None = None,
-                  only: range | None = None) -> BootstrapRun:
+                  only: range | None = None, clusters: np.ndarray | None = None,
+                  base: np.ndarray | None = None) -> BootstrapRun:
     """Run the protocol's bootstrap replicates; ``rows``/``curves`` are the point estimate's.
 
     ``estimator(freq)`` refits the whole analysis with frequency weights ``freq`` (one per each of
@@ -263,7 +295,9 @@ def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]
     it raises fails that replicate with the exception's ``reason``. With worker processes it
     must pickle (a module-level function or a :func:`functools.partial` of one). ``only`` runs
     one chunk of the replicates (e.g. ``range(25, 50)``); replicate ``r`` gives the same numbers
-    whichever chunk, process or machine runs it. ``progress``: None (a terminal bar when
+    whichever chunk, process or machine runs it. ``clusters`` (row -> cluster index) resamples
+    clusters with all their rows and ``base`` multiplies the weights (:func:`unit_freq`,
+    :func:`resampling_units`). ``progress``: None (a terminal bar when
     standard error is a terminal), True/False, or a callback ``f(done, total)``; a line with
     done/total, elapsed time and the time left goes to the ``emulant`` log at every tenth.
 
@@ -279,7 +313,8 @@ def run_bootstrap(estimator: Callable[[np.ndarray], tuple[list[dict], list[dict]
     if reps.start < 0 or reps.stop > requested:
         raise ValueError(f"replicates {reps.start}-{reps.stop - 1} outside 0-{requested - 1}")
     state = {"estimator": estimator, "n": int(n), "seed": seed, "kind": settings.kind,
-             "row_index": key_index(rows, ROW_KEY), "curve_index": key_index(curves, CURVE_KEY)}
+             "row_index": key_index(rows, ROW_KEY), "curve_index": key_index(curves, CURVE_KEY),
+             "clusters": clusters, "base": base}
     results: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     failures: dict[int, str] = {}
     what = ("bootstrap replicates" if only is None

@@ -26,6 +26,7 @@ from emulant.errors import EmulantError, NonConvergenceWarning, ReplicateFailure
 from emulant.estimation.bootstrap import (
     ROW_KEY,
     BootstrapRun,
+    resampling_units,
     row_key,
     run_bootstrap,
 )
@@ -253,12 +254,12 @@ def point_estimate(cohort: pd.DataFrame, protocol: Protocol,
     person_time = person_time_of(cohort, protocol, periods)
     problems: list[str] = []
     try:
-        point = build_sample(cohort, protocol, design, X)
+        point = build_sample(cohort, protocol, design, X, resampling_units(cohort)[1])
         steps.step()
         rows, curves = estimate_sample(point, steps, person_time, problems)
     except (SampleError, WeightsError) as exc:
         raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
-    ones = np.ones(len(cohort))
+    ones = point.freq
     reasons = {}
     for lv in levels:
         level_rows, why = level_estimates(lv, protocol, ones, point=True)
@@ -285,7 +286,7 @@ def adherence_table(cohort: pd.DataFrame, protocol: Protocol,
     if person_time is None:
         return pd.DataFrame(columns=list(ADHERENCE_COLUMNS))
     design, X, _, _ = _prepare(cohort, protocol)
-    point = build_sample(cohort, protocol, design, X)
+    point = build_sample(cohort, protocol, design, X, resampling_units(cohort)[1])
     return adherence_summary(point, person_time, sample_adherence(point, person_time))
 
 
@@ -302,8 +303,10 @@ def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointE
               for o, m in point.starts.items()}
     estimator = partial(replicate_estimates, cohort, protocol, design, X, levels=levels,
                         starts=starts, person_time=person_time_of(cohort, protocol, periods))
+    clusters, base = resampling_units(cohort)
     return run_bootstrap(estimator, len(cohort), protocol, point.rows, point.curves,
-                         workers=workers, progress=progress, start_method=start_method, only=only)
+                         workers=workers, progress=progress, start_method=start_method, only=only,
+                         clusters=clusters, base=base)
 
 
 def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Protocol) -> EffectsResult:

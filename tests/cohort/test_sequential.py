@@ -14,7 +14,12 @@ import pandas as pd
 import pytest
 
 from emulant.cohort.covariates import CohortError
-from emulant.cohort.sequential import TrialPlan, build_sequential, sample_noninitiators, trial_starts
+from emulant.cohort.sequential import (
+    TrialPlan,
+    build_sequential,
+    sample_noninitiators,
+    trial_starts,
+)
 from emulant.extract import open_extract
 from emulant.protocol import parse_protocol
 
@@ -124,13 +129,13 @@ def test_attrition_in_person_trials(built):
     cells = [(j, a) for row in EXPECTED.values() for j, a in enumerate(row)]
     remaining = [len(cells)]
     persons = [len(EXPECTED)]
-    for k, step in enumerate(STEPS):
+    for k in range(len(STEPS)):
         gone = set(STEPS[:k + 1])
         remaining.append(sum(a not in gone for _, a in cells))
         persons.append(sum(any(a not in gone for a in row) for row in EXPECTED.values()))
     assert att.remaining.tolist() == remaining
     assert att.persons.tolist() == persons
-    assert att.excluded.tolist() == [0] + [a - b for a, b in zip(remaining, remaining[1:])]
+    assert att.excluded.tolist() == [0] + [a - b for a, b in zip(remaining[:-1], remaining[1:], strict=True)]
 
 
 def test_follow_up_from_the_trial_start(built):
