@@ -198,3 +198,94 @@ def test_sampling_in_the_cohort_adds_an_attrition_row(tmp_path):
     last = res.attrition.iloc[-1]
     assert last.step == "noninitiator_sample" and last.remaining == len(res.cohort)
     assert (res.cohort.arm == S).sum() == 3  # persons 1, 3, 4 start once each
+
+
+# ----------------------------------------------------------------------------- person by person
+
+
+def _random_extract(folder: Path, n: int = 300, seed: int = 5) -> dict:
+    """Random persons with gaps in coverage, deaths, starts and kidney records (invented)."""
+    rng = np.random.default_rng(seed)
+    folder.mkdir(parents=True, exist_ok=True)
+    day = lambda k: START + dt.timedelta(days=int(k))  # noqa: E731
+    ids = np.arange(1, n + 1)
+    birth = {i: day(-rng.integers(36 * 365, 82 * 365)) for i in ids}
+    cov = []
+    for i in ids:  # two or three periods, some touching, some overlapping, some with gaps
+        s = int(rng.integers(-900, -100))
+        for _ in range(int(rng.integers(2, 4))):
+            e = s + int(rng.integers(30, 500))
+            cov.append((i, day(s), day(e)))
+            s = e + int(rng.choice([-20, 1, 2, 40]))
+    disp = [(i, day(rng.integers(-400, 420))) for i in ids for _ in range(int(rng.integers(0, 5)))]
+    kid = [(i, day(rng.integers(-600, 420))) for i in ids if rng.random() < 0.3]
+    deaths = {i: day(rng.integers(-50, 420)) for i in ids if rng.random() < 0.25}
+    pd.DataFrame({"person_id": ids, "birth_date": [birth[i] for i in ids], "sex": "F"}).to_csv(
+        folder / "persons.csv", index=False)
+    pd.DataFrame(cov, columns=["person_id", "start_date", "end_date"]).to_csv(
+        folder / "coverage.csv", index=False)
+    pd.DataFrame([(i, d, "KST2", 30) for i, d in disp],
+                 columns=["person_id", "date", "code", "days_supply"]).to_csv(
+        folder / "dispensings.csv", index=False)
+    pd.DataFrame([(i, d, "KD1", "outpatient") for i, d in kid],
+                 columns=["person_id", "date", "code", "setting"]).to_csv(
+        folder / "diagnoses.csv", index=False)
+    pd.DataFrame(columns=["person_id", "date", "code", "value"]).to_csv(
+        folder / "measurements.csv", index=False)
+    pd.DataFrame({"person_id": list(deaths), "date": list(deaths.values())}).to_csv(
+        folder / "deaths.csv", index=False)
+    return {"ids": ids, "birth": birth, "cov": cov, "disp": disp, "kid": kid, "deaths": deaths}
+
+
+def _reference(x: dict, starts: list[dt.date], washout: int, every: int) -> dict:
+    """§5c read literally, one person-trial at a time: the arm, or the first step failed."""
+    def age(b: dt.date, t0: dt.date) -> int:
+        return t0.year - b.year - ((t0.month, t0.day) < (b.month, b.day))
+
+    out = {}
+    for i in x["ids"]:
+        periods = sorted((s, e) for p, s, e in x["cov"] if p == i)
+        merged: list[list[dt.date]] = []
+        for s, e in periods:  # overlapping or touching periods merge
+            if merged and s <= merged[-1][1] + dt.timedelta(days=1):
+                merged[-1][1] = max(merged[-1][1], e)
+            else:
+                merged.append([s, e])
+        disp = [d for p, d in x["disp"] if p == i]
+        kid = [d for p, d in x["kid"] if p == i]
+        for j, t0 in enumerate(starts):
+            k = lambda d, t0=t0: (d - t0).days  # noqa: E731
+            holding = [s for s, e in merged if s <= t0 <= e]
+            if i in x["deaths"] and x["deaths"][i] < t0:
+                out[i, j] = "alive"
+            elif not 40 <= age(x["birth"][i], t0) <= 80:
+                out[i, j] = "age"
+            elif not holding or k(holding[0]) > -365:
+                out[i, j] = "coverage_before"
+            elif any(-washout <= k(d) <= -1 for d in disp):
+                out[i, j] = "washout"
+            elif any(-365 <= k(d) <= 0 for d in kid):
+                out[i, j] = "exclude:kidney"
+            else:
+                out[i, j] = S if any(0 <= k(d) <= every - 1 for d in disp) else N
+    return out
+
+
+def test_person_trials_person_by_person_against_the_contract_read_literally(tmp_path):
+    x = _random_extract(tmp_path / "extract")
+    d = {**PROTOCOL, "eligibility": {"entry": {"start": "2018-01-01", "end": "2018-12-31"},
+                                     "age": {"min": 40, "max": 80}, "coverage_before_days": 365,
+                                     "exclude": [{"concept": "kidney", "window": [-365, 0]}]},
+         "strategies": {**PROTOCOL["strategies"], "washout_days": 180}}
+    p = parse_protocol(d)
+    res = build_sequential(open_extract(tmp_path / "extract", p), p, PLAN)
+    starts = trial_starts(START, dt.date(2018, 12, 31), EVERY)
+    want = _reference(x, starts, 180, EVERY)
+    got = {(r.person_id, r.trial): r.arm for r in res.cohort.itertuples()}
+    assert got == {key: a for key, a in want.items() if a in (S, N)}
+    assert 20 < sum(a == S for a in got.values()) and len(got) > 300  # the case is not trivial
+    steps = res.attrition.step.tolist()
+    for k, step in enumerate(steps[1:], start=1):
+        gone = set(steps[1:k + 1])
+        assert res.attrition.remaining[k] == sum(a not in gone for a in want.values()), step
+        assert res.attrition.persons[k] == len({i for (i, _), a in want.items() if a not in gone})
