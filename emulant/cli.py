@@ -177,7 +177,8 @@ def cmd_synth(args: argparse.Namespace) -> int:
     def run():
         from synthetic_cohort.generate import write_synthetic
 
-        return write_synthetic(Path(args.out), persons=args.persons, seed=args.seed, fmt=args.format)
+        return write_synthetic(Path(args.out), persons=args.persons, seed=args.seed, fmt=args.format,
+                               scenario=args.scenario)
 
     written = _stage(f"writing the synthetic extract to {args.out}", run)
     out = Path(args.out)
@@ -301,6 +302,8 @@ def build_parser() -> argparse.ArgumentParser:
     sy.add_argument("--out", required=True, metavar="DIR", help="output folder")
     sy.add_argument("--format", choices=("parquet", "csv"), default="parquet",
                     help="table file format (default parquet)")
+    sy.add_argument("--scenario", choices=("demo", "designs"), default="demo",
+                    help="demo (default) | designs (an index flare: clone, sequential, dynamic)")
     sy.set_defaults(func=cmd_synth)
 
     wh = sub.add_parser("where", help="print where the configured study's results and reports are",

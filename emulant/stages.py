@@ -81,7 +81,8 @@ def _extract_dir(input: Any) -> Path:
 def synthesize_extract(input: Any, output: Any, params: Any) -> None:
     from synthetic_cohort.generate import write_synthetic
 
-    write_synthetic(Path(output.truth).parent, persons=int(params.persons), seed=int(params.seed), fmt="parquet")
+    write_synthetic(Path(output.truth).parent, persons=int(params.persons), seed=int(params.seed),
+                    fmt="parquet", scenario=getattr(params, "scenario", None) or "demo")
 
 
 def check_extract(input: Any, output: Any, params: Any) -> None:

@@ -8,6 +8,7 @@ engine sees no change when the same seed is written again.
 Command line::
 
     python -m synthetic_cohort.generate --out DIR [--persons N] [--seed S] [--format csv]
+                                        [--scenario designs]
     python -m synthetic_cohort.generate --write-config     # regenerate config/ from the template
 """
 
@@ -42,6 +43,8 @@ TEMPLATE = HERE / "demo_protocol.yaml"
 CODELISTS = HERE / "codelists"
 TABLES = ("persons", "coverage", "dispensings", "diagnoses", "measurements", "deaths")
 FORMATS = ("parquet", "csv")
+SCENARIOS = ("demo", "designs")  # designs: the index-flare scenario (synthetic_cohort/designs.py)
+DESIGNS_PROTOCOLS = HERE / "designs"  # its example protocols, written beside its extract
 CSV_OPTIONS = pacsv.WriteOptions(quoting_style="needed")
 OUTCOME_PARAMS = {"hf_admission": P.PRIMARY, "lens_opacity": P.NEGATIVE_CONTROL,
                   "death": P.DEATH}  # all-cause death, for the decision summary
@@ -240,22 +243,32 @@ def _write_codelists(folder: Path) -> list[Path]:
 
 
 def write_synthetic(out_dir, persons: int = 20000, seed: int = 20261201,
-                    fmt: str = "parquet") -> dict:
-    """Write the invented extract, ``protocol.yaml``, ``codelists/`` and ``truth.json``.
+                    fmt: str = "parquet", scenario: str = "demo") -> dict:
+    """Write the invented extract, its protocol(s), ``codelists/`` and ``truth.json``.
 
-    Returns the truth (the content of ``truth.json``). Files whose content is unchanged keep
-    their mtime. Files of the other format for the same tables are removed, so each table has
-    one file.
+    ``scenario``: ``demo`` (the initiators demo: ``protocol.yaml`` and ``codelists/``) or
+    ``designs`` (the index-flare scenario of ``synthetic_cohort/designs.py``: ``clone.yaml``,
+    ``sequential.yaml``, ``dynamic.yaml``), each from its own persons and stream. Returns the
+    truth (the content of ``truth.json``). Files whose content is unchanged keep their mtime.
+    Files of the other format for the same tables are removed, so each table has one file.
     """
     if fmt not in FORMATS:
         raise SynthError(f"format: expected one of {', '.join(FORMATS)}, got {fmt!r}")
+    if scenario not in SCENARIOS:
+        raise SynthError(f"scenario: expected one of {', '.join(SCENARIOS)}, got {scenario!r}")
     if isinstance(persons, bool) or not isinstance(persons, int | np.integer) or persons < 1:
         raise SynthError(f"persons: expected a whole number >= 1, got {persons!r}")
     if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
         raise SynthError(f"seed: expected a whole number >= 0, got {seed!r}")
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    tables, truth = build(int(persons), int(seed))
+    if scenario == "designs":
+        from synthetic_cohort import designs, truth_designs
+
+        tables, latent = designs.build(int(persons), int(seed))
+        truth = _rounded(truth_designs.designs_truth(tables, latent, int(persons), int(seed)))
+    else:
+        tables, truth = build(int(persons), int(seed))
     arrow = to_arrow(tables, person_ids(int(persons)))
     for name in TABLES:
         tab = arrow[name]
@@ -267,8 +280,12 @@ def write_synthetic(out_dir, persons: int = 20000, seed: int = 20261201,
             stale = out / f"{name}{other}"
             if other != f".{fmt}" and stale.exists():
                 stale.unlink()
-    _write_text(out / "protocol.yaml", TEMPLATE.read_text(encoding="utf-8"))
-    _write_codelists(out / "codelists")
+    if scenario == "designs":
+        for f in sorted(DESIGNS_PROTOCOLS.glob("*.yaml")):
+            _write_text(out / f.name, f.read_text(encoding="utf-8"))
+    else:
+        _write_text(out / "protocol.yaml", TEMPLATE.read_text(encoding="utf-8"))
+        _write_codelists(out / "codelists")
     _write_text(out / "truth.json", json.dumps(truth, indent=2) + "\n")
     return truth
 
@@ -295,6 +312,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--persons", type=int, default=20000)
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--format", choices=FORMATS, default="parquet")
+    ap.add_argument("--scenario", choices=SCENARIOS, default="demo",
+                    help="demo (initiators) or designs (index flare: clone, sequential, dynamic)")
     ap.add_argument("--write-config", action="store_true",
                     help="regenerate config/protocols/demo.yaml and config/codelists/")
     args = ap.parse_args(argv)
@@ -305,12 +324,17 @@ def main(argv: list[str] | None = None) -> int:
             print(p)
     if args.out:
         try:
-            truth = write_synthetic(args.out, args.persons, args.seed, args.format)
+            truth = write_synthetic(args.out, args.persons, args.seed, args.format, args.scenario)
         except SynthError as exc:
             print(f"error: {exc}")
             return 2
-        print(f"{args.out}: {truth['persons']} persons, {truth['eligible']['n']} eligible "
-              f"({', '.join(f'{k} {v}' for k, v in truth['eligible']['by_arm'].items())})")
+        if args.scenario == "designs":
+            print(f"{args.out}: {truth['persons']} persons, {truth['clone']['eligible']} eligible "
+                  f"for the clone protocols, {truth['sequential']['person_trials']} sequential "
+                  "person-trials")
+        else:
+            print(f"{args.out}: {truth['persons']} persons, {truth['eligible']['n']} eligible "
+                  f"({', '.join(f'{k} {v}' for k, v in truth['eligible']['by_arm'].items())})")
     return 0
 
 

@@ -4,9 +4,12 @@ from pathlib import Path
 from emulant import paths as emulant_paths
 
 SYNTHETIC_DEFAULT = "resources/synthetic"
+# the invented extracts the workflow writes itself: folder -> generator scenario
+SYNTHETIC_SCENARIOS = {SYNTHETIC_DEFAULT: "demo", "resources/synthetic-designs": "designs"}
 EXTRACT = config["extract"]
 PROTOCOL = config["protocol"]
-IS_SYNTHETIC = Path(EXTRACT) == Path(SYNTHETIC_DEFAULT)
+SCENARIO = next((s for d, s in SYNTHETIC_SCENARIOS.items() if Path(EXTRACT) == Path(d)), None)
+IS_SYNTHETIC = SCENARIO is not None
 PROTOCOL_PARSED = emulant_paths.protocol(PROTOCOL)  # parsed once here; each job parses its own copy
 STUDY = PROTOCOL_PARSED.study.id
 RESULTS = f"{config.get('results', 'results')}/{STUDY}"
