@@ -33,6 +33,7 @@ from emulant.estimation.bootstrap import (
 from emulant.estimation.chunks import PointEstimate, combine_runs
 from emulant.estimation.decision import DECISION_COLUMNS, decision_table
 from emulant.estimation.evalue import e_value_rows
+from emulant.estimation.gformula import gformula_estimates
 from emulant.estimation.intervals import attach_intervals, non_estimable_replicates
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
 from emulant.estimation.per_protocol import (
@@ -89,6 +90,9 @@ def estimate_sample(sample: AnalysisSample, progress: Progress | None = None,
             r, c = time_to_event_estimates(sample, outcome)
             if adherence is not None:
                 r2, c2, fit_problems = per_protocol_estimates(sample, person_time, adherence, outcome)
+                if "gformula" in sample.protocol.analysis.methods:
+                    r3, c3 = gformula_estimates(sample, person_time, outcome, fit_problems)
+                    r2, c2 = r2 + r3, c2 + c3
                 r, c = list(r) + r2, list(c) + c2
                 if problems is not None:
                     problems += [p for p in fit_problems if p not in problems]

@@ -85,6 +85,8 @@ class PersonPeriods:
     deviates: np.ndarray  # bool: the person's deviation day falls in this period
     n_periods: int
     period_days: int
+    values: np.ndarray | None = None  # the time-varying covariates as measured (rows x names), or None
+    value_kinds: tuple[str, ...] = ()  # their kinds (continuous | binary), in the protocol's order
 
     @property
     def first_row(self) -> np.ndarray:
@@ -133,7 +135,12 @@ def person_periods(cohort: pd.DataFrame, periods: pd.DataFrame, period_days: int
     else:
         L, L_cols = np.empty((len(frame), 0)), ()
     K = int(period.max()) + 1 if period.size else 0
-    return PersonPeriods(pos, period, start, L, tuple(L_cols), on, deviates, K, period_days)
+    vkinds = tuple((kinds or {}).get(n, "continuous") for n in names)
+    values = None  # numbers only: a categorical time-varying covariate has no values here
+    if "categorical" not in vkinds:
+        values = frame[list(names)].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=float)
+    return PersonPeriods(pos, period, start, L, tuple(L_cols), on, deviates, K, period_days,
+                         values, vkinds)
 
 
 def period_basis(period: np.ndarray, n_periods: int) -> np.ndarray:

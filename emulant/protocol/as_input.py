@@ -88,6 +88,8 @@ def as_input(p: Protocol) -> dict[str, Any]:
             "balance": {"smd_threshold": a.smd_threshold},
             "primary": {"method": a.primary.method, "estimand": a.primary.estimand,
                         "horizon_day": a.primary.horizon_day},
+            "gformula": {"simulated_persons": a.gformula.simulated_persons,
+                         "seed": a.gformula.seed},
         },
         "report": {"min_cell": p.report.min_cell},
         "decision": None if p.decision is None else {

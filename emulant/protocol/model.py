@@ -21,7 +21,8 @@ KINDS = ("continuous", "binary", "categorical")
 BUILTINS = ("age", "sex", "calendar_year")
 ESTIMANDS = ("ATE", "ATT", "ATO")
 CONTRASTS = ("intention_to_treat", "per_protocol")
-METHODS = ("unadjusted", "ipw", "standardization", "doubly_robust")
+METHODS = ("unadjusted", "ipw", "standardization", "doubly_robust", "gformula")
+PER_PROTOCOL_ONLY = ("gformula",)  # methods of the per_protocol contrast alone (CONTRACTS §5e)
 DEATH = "death"
 BOOTSTRAP_KINDS = ("multinomial", "bayesian")
 
@@ -189,6 +190,13 @@ class Bootstrap:
 
 
 @dataclass(frozen=True)
+class GFormula:
+    """``analysis.gformula``: the Monte Carlo of the parametric g-formula (CONTRACTS §5e)."""
+    simulated_persons: int = 10000
+    seed: int = 20261202
+
+
+@dataclass(frozen=True)
 class Primary:
     """The pre-specified primary estimate the report leads with (``analysis.primary``)."""
     method: str = "ipw"
@@ -208,6 +216,7 @@ class Analysis:
     bootstrap: Bootstrap = Bootstrap()
     smd_threshold: float = 0.1
     primary: Primary = Primary()
+    gformula: GFormula = GFormula()
 
 
 @dataclass(frozen=True)

@@ -11,9 +11,11 @@ from emulant.protocol.model import (
     CONTRASTS,
     ESTIMANDS,
     METHODS,
+    PER_PROTOCOL_ONLY,
     Analysis,
     Bootstrap,
     FollowUp,
+    GFormula,
     Primary,
     Propensity,
     ReportSettings,
@@ -40,7 +42,8 @@ def read_estimands(c: Collector, top: dict, strategies: Strategies | None = None
     return estimands, contrasts
 
 
-def read_analysis(c: Collector, node: Any, follow: FollowUp, estimands: tuple[str, ...] = ("ATE", "ATT")) -> Analysis:
+def read_analysis(c: Collector, node: Any, follow: FollowUp, estimands: tuple[str, ...] = ("ATE", "ATT"),
+                  contrasts: tuple[str, ...] = ("intention_to_treat",)) -> Analysis:
     """``analysis``: propensity, weights, horizons, methods, periods, censoring weights, bootstrap, balance, primary."""
     a = c.mapping(node, "analysis", known("analysis"))
     p = c.mapping(a.get("propensity"), "analysis.propensity", known("analysis.propensity"))
@@ -58,7 +61,12 @@ def read_analysis(c: Collector, node: Any, follow: FollowUp, estimands: tuple[st
         if h > follow.max_days:
             c.add("analysis.horizons_days", f"horizon {h} is beyond follow_up.max_days ({follow.max_days})")
     methods = tuple(m for m in (c.choice(x, f"analysis.methods[{i}]", METHODS, None) for i, x in enumerate(c.listing(a.get("methods"), "analysis.methods"))) if m and m != "unadjusted") if a.get("methods") is not None else ("ipw", "standardization", "doubly_robust")
+    for m in PER_PROTOCOL_ONLY:
+        if m in methods and "per_protocol" not in contrasts:
+            c.add("analysis.methods", f"method {m} estimates the per_protocol contrast only: add "
+                  "per_protocol to contrasts, or leave the method out")
     b = c.mapping(a.get("bootstrap"), "analysis.bootstrap", known("analysis.bootstrap"))
+    gf = c.mapping(a.get("gformula"), "analysis.gformula", known("analysis.gformula"))
     bal = c.mapping(a.get("balance"), "analysis.balance", known("analysis.balance"))
     analysis = Analysis(
         Propensity(c.choice(p.get("model"), "analysis.propensity.model", ("logistic",), "logistic") or "logistic",
@@ -74,6 +82,8 @@ def read_analysis(c: Collector, node: Any, follow: FollowUp, estimands: tuple[st
                   c.choice(b.get("kind"), "analysis.bootstrap.kind", BOOTSTRAP_KINDS, "multinomial") or "multinomial"),
         c.number(bal.get("smd_threshold"), "analysis.balance.smd_threshold", 0.1),
         read_primary(c, a.get("primary"), methods, estimands, tuple(sorted(set(horizons)))),
+        GFormula(c.integer(gf.get("simulated_persons"), "analysis.gformula.simulated_persons", 10000, 100) or 10000,
+                 c.integer(gf.get("seed"), "analysis.gformula.seed", 20261202, 0) or 0),
     )
     return analysis
 

@@ -54,7 +54,7 @@ def read_protocol(data: Any, base_dir: str | Path = ".", path: str | Path | None
                                    tuple(x.name for x in covariates))
     estimands, contrasts = read_estimands(c, top, strategies)
 
-    analysis = read_analysis(c, top.get("analysis"), follow, estimands)
+    analysis = read_analysis(c, top.get("analysis"), follow, estimands, contrasts)
     report = read_report(c, top.get("report"))
     decision = read_decision(c, top.get("decision"), outcomes, strategies, analysis)
     outcomes = decision_outcomes(outcomes, decision)
