@@ -51,7 +51,12 @@ from emulant.estimation.sample import (
 from emulant.estimation.subgroups import LevelAnalysis, level_differences, prepare_levels
 from emulant.estimation.tte import time_to_event_estimates
 from emulant.models.design import DesignError, build_design
-from emulant.models.treatment_process import PersonPeriods, TreatmentProcessError, person_periods
+from emulant.models.treatment_process import (
+    AdherenceWeights,
+    PersonPeriods,
+    TreatmentProcessError,
+    person_periods,
+)
 from emulant.models.weights import WeightsError
 from emulant.progress import Progress
 from emulant.protocol import MeasuredOutcome, Protocol
@@ -82,7 +87,11 @@ def estimate_sample(sample: AnalysisSample, progress: Progress | None = None,
     rows: list[dict] = []
     curves: list[dict] = []
     outcomes = sample.protocol.outcomes
-    adherence = sample_adherence(sample, person_time) if person_time is not None else None
+    adherence = None
+    if person_time is not None:  # the weights over time serve ipw and standardization only
+        weighted = {"ipw", "standardization"} & set(sample.protocol.analysis.methods)
+        adherence = (sample_adherence(sample, person_time) if weighted
+                     else AdherenceWeights({}, {}, ()))
     for outcome in outcomes.all():  # primary, secondary, negative controls
         if isinstance(outcome, MeasuredOutcome):
             rows += measured_outcome_rows(sample, outcome)

@@ -40,8 +40,9 @@ the arm *is* the treatment history of these models.
 **Monte Carlo.** ``analysis.gformula.simulated_persons`` persons are drawn with replacement from
 the estimand's population (probability proportional to the target weights of
 :func:`emulant.estimation.tte_weighting.target_weights`: everyone for ATE, the treated for ATT,
-overlap weights for ATO, times the replicate's frequency weights), from ``analysis.gformula.seed``;
-each keeps their :math:`X` and their measured :math:`L_0`. For each arm, with the same draws
+overlap weights for ATO, times the replicate's frequency weights), from ``analysis.gformula.seed``
+and the sample's frequency weights (each bootstrap replicate draws anew, so its intervals hold
+the Monte Carlo error); each keeps their :math:`X` and their measured :math:`L_0`. For each arm, with the same draws
 (common random numbers), the covariates are simulated period by period with the arm set by the
 strategy, and each simulated person's cumulative incidence follows from the hazards given their
 simulated history (:func:`emulant.estimation.pooled_logistic.incidence_at`, no event drawn: the
@@ -59,6 +60,7 @@ inside a period counts from the period's first day (an approximation of order on
 
 from __future__ import annotations
 
+import zlib
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -222,6 +224,13 @@ def simulate(models: GFormulaModels, X: np.ndarray, L0: np.ndarray, arm: np.ndar
     return incidence_at(h, hc, days, period_days)
 
 
+def seed_of(seed: int, freq: np.ndarray) -> list[int]:
+    """The random stream of one sample: ``analysis.gformula.seed`` and a checksum of the
+    sample's frequency weights, so that every bootstrap replicate draws its own simulated
+    persons (its interval then holds the Monte Carlo error too) and reruns repeat every draw."""
+    return [int(seed), zlib.crc32(np.ascontiguousarray(freq, dtype=float).tobytes())]
+
+
 def draw_persons(v: np.ndarray, size: int, rng: np.random.Generator) -> np.ndarray:
     """Indices of ``size`` persons drawn with replacement with probability proportional to ``v``."""
     v = np.asarray(v, dtype=float)
@@ -255,11 +264,12 @@ def gformula_estimates(sample, pp: PersonPeriods, outcome: str, problems: list[s
     days = np.concatenate([c.grid, np.asarray(c.horizons, dtype=float)])
     rows, curve_rows = [], []
     n_sim = int(settings.simulated_persons)
+    seed = seed_of(settings.seed, c.f)
     for est in c.protocol.estimands:
         idx = draw_persons(target_weights(est, c.a, c.e, c.f), n_sim,
-                           np.random.default_rng([settings.seed, 1]))
+                           np.random.default_rng([*seed, 1]))
         inc = {g: simulate(models, c.X[idx], L0[idx], np.full(n_sim, g),
-                           np.random.default_rng([settings.seed, 2]), days, c.P)
+                           np.random.default_rng([*seed, 2]), days, c.P)
                for g in (0, 1)}
         curves, risk = standardized_risks(inc, np.ones(n_sim), c.grid.size, c.horizons)
         rows += c.contrast_rows(est, METHOD, risk)
@@ -273,9 +283,10 @@ def natural_course_rows(sample, c: OutcomeContext, models: GFormulaModels, L0: n
     """Per arm and horizon: the natural course's risk, the observed risk up to deviation, and
     their difference (``estimand`` empty: the natural course is the cohort as observed)."""
     n_sim = int(settings.simulated_persons)
-    idx = draw_persons(c.f, n_sim, np.random.default_rng([settings.seed, 3]))
+    seed = seed_of(settings.seed, c.f)
+    idx = draw_persons(c.f, n_sim, np.random.default_rng([*seed, 3]))
     a = c.a[idx]
-    inc = simulate(models, c.X[idx], L0[idx], a, np.random.default_rng([settings.seed, 4]), days,
+    inc = simulate(models, c.X[idx], L0[idx], a, np.random.default_rng([*seed, 4]), days,
                    c.P, natural=True)
     obs = natural_course_context(sample, c.outcome)
     _, observed = obs.aj_curves(obs.f)

@@ -193,7 +193,7 @@ def per_protocol_estimates(sample, pp: PersonPeriods, adherence: AdherenceWeight
     rows += c.contrast_rows(None, "unadjusted", risk)
     curve_rows += c.curve_rows(None, "unadjusted", curves)
     for est in c.protocol.estimands:
-        w_rows = np.asarray(adherence.weights[est], dtype=float)
+        w_rows = np.asarray(adherence.weights.get(est, ()), dtype=float)  # empty without ipw, standardization
         if "ipw" in methods:
             curves, risk = ipw_curves(c, pp, w_rows)
             rows += c.contrast_rows(est, "ipw", risk)
