@@ -14,6 +14,7 @@ from emulant.protocol import Protocol, outcome_name
 from emulant.protocol.as_input import as_input_yaml
 from emulant.report import adherence, decision, figures, fmt, narrative, results, tables, target
 from emulant.report import disclosure as dc
+from emulant.report import gformula as gformula_part
 from emulant.report.compact import compact_tables
 from emulant.report.curve_steps import curve_rule_text
 from emulant.report.forest import forest_figure, forest_rows
@@ -162,7 +163,9 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         ctx["comparison"] = comparison_context(comparison, p) if comparison else None
         pp = adherence.section(raw, p)
         if pp is not None:
-            pp["estimates"] = results.estimates(est, p, "per_protocol") if est is not None else None
+            pp["gformula"] = gformula_part.section(est, p)
+            shown = est if est is None else est[~est["measure"].isin(gformula_part.NATURAL_MEASURES)]
+            pp["estimates"] = results.estimates(shown, p, "per_protocol") if est is not None else None
             pp["curves"] = results.curves(cv, p, contrast="per_protocol") if cv is not None else None
             for i, c in enumerate(pp["curves"] or []):
                 c["svg"] = figures.curves_figure(c["panels"], prefix=f"fig-pp-curves{i}")
@@ -190,6 +193,9 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         ctx["assumptions"] += adherence.assumptions(p, ctx["pp"])
         ctx["warnings"] += [{"section": "per-protocol", "text": w}
                             for w in ctx["pp"]["weight_warnings"]]
+        ctx["assumptions"] += gformula_part.assumptions(p, ctx["pp"].get("gformula"))
+        ctx["warnings"] += [{"section": "per-protocol", "text": w}
+                            for w in (ctx["pp"].get("gformula") or {}).get("warnings", [])]
     ctx["manifest"] = manifest_context(manifest) if manifest else None
     ctx["protocol_yaml"] = as_input_yaml(p)
     ctx["codelists"] = codelists(p)

@@ -15,7 +15,8 @@ from emulant.report import fmt
 from emulant.report.figures import OKABE_ITO, to_svg
 
 METHOD_LABEL = {"unadjusted": "unadjusted", "ipw": "inverse probability weighting",
-                "standardization": "standardization", "doubly_robust": "doubly robust"}
+                "standardization": "standardization", "doubly_robust": "doubly robust",
+                "gformula": "parametric g-formula"}
 
 
 def _combo(r: Any) -> str:

@@ -21,7 +21,8 @@ from emulant.report.figures import OKABE_ITO, RC, _figure, _t, to_svg
 from emulant.report.results import METHOD_ORDER, _order, small_event_arms
 
 SHORT_METHOD = {"unadjusted": "unadjusted", "ipw": "IPW", "standardization": "standardization",
-                "doubly_robust": "doubly robust"}
+                "doubly_robust": "doubly robust",
+                "gformula": "parametric g-formula"}
 ABSOLUTE = ("risk_difference", "mean_difference")
 RELATIVE = ("risk_ratio", "hazard_ratio")
 GREY = "#8A8A8A"

@@ -17,7 +17,7 @@ from emulant.report import fmt
 from emulant.report.curve_steps import events_by_day, pooled_steps
 from emulant.wording import hazard_ratio_label
 
-METHOD_ORDER = ("unadjusted", "ipw", "standardization", "doubly_robust")
+METHOD_ORDER = ("unadjusted", "ipw", "standardization", "doubly_robust", "gformula")
 MEASURE_ORDER = ("risk", "risk_difference", "risk_ratio", "hazard_ratio", "mean",
                  "mean_difference", "rate", "e_value")
 MEASURE_LABEL = {
@@ -27,7 +27,8 @@ MEASURE_LABEL = {
 }
 METHOD_LABEL = {"unadjusted": "unadjusted", "ipw": "inverse probability weighting",
                 "standardization": "standardization (g-formula)",
-                "doubly_robust": "doubly robust (AIPW)"}
+                "doubly_robust": "doubly robust (AIPW)",
+                "gformula": "parametric g-formula (time-varying)"}
 NULL = {"risk_difference": 0.0, "mean_difference": 0.0, "risk_ratio": 1.0, "hazard_ratio": 1.0}
 
 
