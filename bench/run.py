@@ -7,7 +7,7 @@ import sys
 import time
 
 MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_weights", "bench_effects",
-           "bench_survival", "bench_scale", "bench_coverage")
+           "bench_survival", "bench_scale", "bench_coverage", "bench_gformula")
 
 
 def main(argv: list[str] | None = None) -> int:

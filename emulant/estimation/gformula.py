@@ -34,6 +34,9 @@ baseline covariates :math:`X` (the propensity design) and the time-varying covar
   :math:`b(k)`, :math:`X` and :math:`L_k` (0 in a period in which no one of the arm deviates).
 
 :math:`b(k)` is the period basis of :func:`emulant.models.treatment_process.period_basis`.
+The time-varying covariates enter as numbers, as ``periods.parquet`` holds them (a missing value
+filled with the median; its ``<name>_missing`` flag is not modelled); a categorical one is an
+error. All covariates of period :math:`k` are drawn given the values of period :math:`k-1`.
 Under a sustained strategy everyone on protocol in an arm has the same treatment history, so
 the arm *is* the treatment history of these models.
 
