@@ -168,7 +168,7 @@ def sequential_candidates(t: Tables, lat: Latent) -> PersonTrials:
     """The sequential protocol's candidates (CONTRACTS §5c steps, counted in person-trials)."""
     n = t.n
     disp, diag = t.events["dispensings"], t.events["diagnoses"]
-    names = ("persons", "alive", "age", "coverage_before", "washout", "require:flare",
+    names = ("person_trials", "alive", "age", "coverage_before", "washout", "require:flare",
              "exclude:crisis")
     counts = dict.fromkeys(names, 0)
     out = {"person": [], "trial": [], "t0": [], "initiator": []}

@@ -226,7 +226,7 @@ def test_sequential_candidates_follow_the_contract(small):
     assert all(last[p] == j for p, j in zip(i[pt.initiator], pt.trial[pt.initiator], strict=True))
     assert max(np.bincount(i)) > 1  # persons in several trials
     steps = [s for s, _ in pt.attrition]
-    assert steps == ["persons", "alive", "age", "coverage_before", "washout", "require:flare",
+    assert steps == ["person_trials", "alive", "age", "coverage_before", "washout", "require:flare",
                      "exclude:crisis"]
     assert pt.attrition[-1][1] == len(i)
 
@@ -289,3 +289,34 @@ def test_sequential_natural_course_reproduces_the_drawn_data(full):
             per_person = np.bincount(i, resid)
             se = np.sqrt((per_person ** 2).sum()) / len(i)
             assert abs(resid.mean()) < 4 * se, (name, h, resid.mean(), se)
+
+
+def test_sequential_candidates_agree_with_emulant(tmp_path, monkeypatch):
+    # The scenario's own numpy reading of §5c (designs.sequential_candidates) against emulant's
+    # DuckDB person-trials on the written extract, person-trial by person-trial: the truth's
+    # population is the one the estimators see. The protocol is sequential.yaml read as the
+    # initiators design (the `none` arm given a concept with no records) with the plan beside it.
+    from emulant.cohort.sequential import TrialPlan, build_sequential
+    from emulant.extract import open_extract
+    from emulant.protocol import parse_protocol
+
+    monkeypatch.setattr(T, "PATHS", 2000)
+    out = tmp_path / "x"
+    write_synthetic(out, persons=1500, seed=9, scenario="designs")
+    raw = yaml.safe_load((HERE / "sequential.yaml").read_text())
+    st = raw["strategies"]
+    for key in ("design", "trial_every_days", "noninitiator_sample"):
+        st.pop(key)
+    st["arms"]["no_kestrel"] = {"initiate": "placeholder"}
+    raw["concepts"]["placeholder"] = {"source": "dispensings", "codes": ["ZZZ9"]}
+    raw["contrasts"] = ["intention_to_treat"]
+    raw.pop("time_varying")
+    p = parse_protocol(raw)
+    res = build_sequential(open_extract(out, p), p, TrialPlan("kestrel", "no_kestrel", D.TRIAL_EVERY))
+    got = {(int(str(r.person_id)[1:]) - 1, int(r.trial)): r.arm for r in res.cohort.itertuples()}
+    tables, lat = G.build(1500, 9)
+    pt = G.sequential_candidates(tables, lat)
+    mine = {(int(i), int(j)): "kestrel" if s else "no_kestrel"
+            for i, j, s in zip(pt.person, pt.trial, pt.initiator, strict=True)}
+    assert got == mine
+    assert list(zip(res.attrition["step"], res.attrition["remaining"], strict=True)) == pt.attrition
