@@ -251,12 +251,27 @@ def natural_course_context(sample, outcome: str) -> OutcomeContext:
                           contrast=CONTRAST)
 
 
+def periods_cover(pp: PersonPeriods, time: np.ndarray) -> bool:
+    """True when every person's period rows reach the day-period of their last day at risk.
+
+    ``periods.parquet`` ends at the primary outcome's end of follow-up (or deviation): an
+    outcome followed past it (another outcome, death as an outcome) has person-time without
+    measured covariates, and the g-formula is not computed for it."""
+    last = np.zeros(int(pp.person.max()) + 1 if pp.person.size else 0, dtype=int)
+    np.maximum.at(last, pp.person, pp.period)
+    need = np.ceil(np.asarray(time, dtype=float)[: last.size] / pp.period_days) - 1
+    return bool(np.all(need <= last))
+
+
 def gformula_estimates(sample, pp: PersonPeriods, outcome: str, problems: list[str]
                        ) -> tuple[list[dict], list[dict]]:
     """Rows and curve rows of ``method: gformula`` (per estimand) and of its natural course, for
-    one time-to-event outcome; models that did not converge are appended to ``problems``."""
+    one time-to-event outcome whose follow-up the periods cover (:func:`periods_cover`; none
+    otherwise); models that did not converge are appended to ``problems``."""
     c = OutcomeContext(sample, outcome, arrays=per_protocol_arrays(sample.cohort, outcome),
                        contrast=CONTRAST)
+    if not periods_cover(pp, c.time):
+        return [], []
     settings = sample.protocol.analysis.gformula
     time, status = outcome_arrays(sample.cohort, c.outcome)
     K = max(1, -(-int(c.max_days) // c.P))

@@ -219,3 +219,26 @@ def test_gformula_needs_the_per_protocol_contrast():
 
     with pytest.raises(ProtocolError, match="gformula estimates the per_protocol contrast only"):
         two_arm_protocol("gf-itt", analysis={"methods": ["ipw", "gformula"]})
+
+
+def test_no_gformula_rows_for_an_outcome_followed_past_the_periods():
+    # periods.parquet ends with the primary outcome's follow-up; an outcome followed longer has
+    # person-time without measured covariates, which the g-formula cannot model
+    cohort, periods, _ = _simulate(600, 5)
+    cohort[columns.end_day("late")] = float(HORIZON)
+    cohort[columns.end_reason("late")] = "max_follow_up"
+    protocol = two_arm_protocol(
+        "gf-late", follow_up={"max_days": HORIZON}, estimands=["ATE"],
+        strategies={"arms": {"drug_a": {"initiate": "drug_a", "sustain": {"gap_days": 30}},
+                             "drug_b": {"initiate": "drug_b", "sustain": {"gap_days": 30}}},
+                    "treated": "drug_a"},
+        contrasts=["intention_to_treat", "per_protocol"],
+        analysis={"horizons_days": [HORIZON], "methods": ["gformula"], "period_days": P,
+                  "hazard_ratio": False})
+    a, f = cohort.treated.to_numpy(float), np.ones(len(cohort))
+    sample = AnalysisSample(cohort, protocol, cohort[["x"]].to_numpy(float), ("x",), a, f,
+                            np.full(len(a), 0.5), {"ATE": f})
+    pp = person_periods(cohort, periods, P, time_varying=["marker"], kinds={"marker": "continuous"})
+    assert gformula_estimates(sample, pp, "late", []) == ([], [])
+    rows, _ = gformula_estimates(sample, pp, "event", [])
+    assert rows
