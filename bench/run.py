@@ -7,7 +7,8 @@ import sys
 import time
 
 MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_weights", "bench_effects",
-           "bench_survival", "bench_scale", "bench_coverage", "bench_gformula")
+           "bench_survival", "bench_scale", "bench_coverage", "bench_gformula",
+           "bench_influence")
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -55,7 +55,10 @@ def extract_files(extract_dir: str, synthetic: bool) -> list[str]:
 def bootstrap_chunks(protocol: Protocol, chunks: int | str | None) -> list[str]:
     """The bootstrap chunk files' names (config key ``bootstrap_chunks``: a number or 'auto')."""
     from emulant.estimation.chunks import chunk_name, chunk_ranges
+    from emulant.estimation.influence_rows import bootstrap_needed
 
+    if not bootstrap_needed(protocol):  # analysis.variance: influence covers every row
+        return []
     return [chunk_name(r) for r in chunk_ranges(protocol.analysis.bootstrap.replicates, chunks)]
 
 

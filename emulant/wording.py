@@ -43,6 +43,20 @@ def methods_note(protocol: Any) -> str:
     return " ".join(out)
 
 
+def variance_note(protocol: Any) -> str:
+    """Which rows' intervals come from influence functions (``analysis.variance: influence``),
+    for the report's analysis plan ('' with the bootstrap alone)."""
+    if protocol.analysis.variance != "influence":
+        return ""
+    return ("Variance: influence functions of the stacked estimating equations (M-estimation "
+            "sandwich, Stefanski & Boos 2002), which account for the estimated propensity, "
+            "measurement and outcome models (Lunceford & Davidian 2004), give Wald intervals for "
+            "the unadjusted and IPW risks, risk differences, risk ratios (log scale), risk curves "
+            "and rates, and for the unadjusted, IPW and doubly robust means and mean differences "
+            "of measured outcomes; IPW rows with truncated weights or (time to event) censoring "
+            "weights, and every other row, keep the bootstrap. Each row's note says which.")
+
+
 def hazard_ratio_label(protocol: Any) -> str:
     """'cause-specific hazard ratio' when the protocol has competing events, else 'hazard ratio'."""
     return "cause-specific hazard ratio" if protocol.outcomes.competing else "hazard ratio"

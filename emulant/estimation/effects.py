@@ -34,7 +34,13 @@ from emulant.estimation.chunks import PointEstimate, combine_runs
 from emulant.estimation.decision import DECISION_COLUMNS, decision_table
 from emulant.estimation.evalue import e_value_rows
 from emulant.estimation.gformula import gformula_estimates
-from emulant.estimation.intervals import attach_intervals, non_estimable_replicates
+from emulant.estimation.influence_rows import (
+    attach_influence,
+    bootstrap_needed,
+    influence_account,
+    influence_intervals,
+)
+from emulant.estimation.intervals import attach_intervals, no_replicates, non_estimable_replicates
 from emulant.estimation.measured import EstimationError, measured_outcome_rows
 from emulant.estimation.per_protocol import (
     adherence_summary,
@@ -270,6 +276,8 @@ def point_estimate(cohort: pd.DataFrame, protocol: Protocol,
         point = build_sample(cohort, protocol, design, X, resampling_units(cohort)[1])
         steps.step()
         rows, curves = estimate_sample(point, steps, person_time, problems)
+        if protocol.analysis.variance == "influence":
+            attach_influence(point, rows, curves)
     except (SampleError, WeightsError) as exc:
         raise EstimationError(f"the point estimate cannot be computed: {exc}") from None
     ones = point.freq
@@ -325,14 +333,21 @@ def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointE
 def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Protocol) -> EffectsResult:
     """The point estimate with the intervals of its bootstrap chunks, the decision summary, then
     the E-values."""
-    boot = combine_runs(runs, protocol, len(point.rows), len(point.curves))
+    if bootstrap_needed(protocol):
+        boot = combine_runs(runs, protocol, len(point.rows), len(point.curves))
+    else:  # every interval from the influence function: the workflow ran no replicate
+        boot = no_replicates(protocol, len(point.rows), len(point.curves))
     extra_rows, extra_reps = level_differences(point.rows, boot.row_reps, point.subgroups)
     boot = replace(boot, row_reps=np.hstack([boot.row_reps, extra_reps]))
     interval = protocol.analysis.bootstrap.interval
     rows, curves = attach_intervals(point.rows + extra_rows, point.curves, boot, interval)
+    if protocol.analysis.variance == "influence":
+        rows, curves = influence_intervals(point.rows + extra_rows, point.curves, rows, curves)
     decision = decision_table(rows, boot.row_reps, protocol, interval)
     account = boot.account()
     account["non_estimable"] = non_estimable_account(rows, boot)
+    if protocol.analysis.variance == "influence":
+        account.update(influence_account(point.rows, account["non_estimable"]))
     rows = rows + e_value_rows(rows, protocol.outcomes.negative_controls)
     account["point_estimate_warnings"] = list(point.warnings)
     if point.subgroups:
@@ -364,6 +379,7 @@ def estimate_effects(cohort: pd.DataFrame, protocol: Protocol, workers: int = 2,
     periods : periods.parquet (CONTRACTS §5g), needed when the protocol asks for per protocol.
     """
     point = point_estimate(cohort, protocol, periods)
-    boot = bootstrap_replicates(cohort, protocol, point, workers=workers, progress=progress,
-                                start_method=start_method, periods=periods)
-    return gather_effects(point, [boot], protocol)
+    runs = [bootstrap_replicates(cohort, protocol, point, workers=workers, progress=progress,
+                                 start_method=start_method, periods=periods)
+            ] if bootstrap_needed(protocol) else []
+    return gather_effects(point, runs, protocol)

@@ -70,6 +70,13 @@ def non_estimable_replicates(rows: list[dict], run: BootstrapRun) -> np.ndarray:
     return np.where(ok, bad.sum(axis=0), 0).astype(int)
 
 
+def no_replicates(protocol, n_rows: int, n_curves: int) -> BootstrapRun:
+    """An empty run: no replicate requested (every interval from the influence function)."""
+    s = protocol.analysis.bootstrap
+    return BootstrapRun(0, s.seed, "wald", np.empty((0, n_rows)), np.empty((0, n_curves)),
+                        kind=s.kind)
+
+
 def attach_intervals(rows: list[dict], curves: list[dict], run: BootstrapRun,
                      interval: str) -> tuple[list[dict], list[dict]]:
     """New rows with ``se, ci_low, ci_high`` (estimates) and ``ci_low, ci_high`` (curves).

@@ -85,6 +85,7 @@ def as_input(p: Protocol) -> dict[str, Any]:
             "censoring_weights": a.censoring_weights,
             "bootstrap": {"replicates": a.bootstrap.replicates, "seed": a.bootstrap.seed,
                           "interval": a.bootstrap.interval, "kind": a.bootstrap.kind},
+            "variance": a.variance,
             "balance": {"smd_threshold": a.smd_threshold},
             "primary": {"method": a.primary.method, "estimand": a.primary.estimand,
                         "horizon_day": a.primary.horizon_day},

@@ -30,6 +30,7 @@ from emulant.protocol.model import (
     KINDS,
     METHODS,
     SUMMARIES,
+    VARIANCES,
 )
 
 #: The value types. ``mapping``: fixed keys (rows below it); ``names``: keys the user names, each
@@ -232,6 +233,8 @@ KEYS: tuple[Key, ...] = (
     Key("analysis.gformula", "mapping", "the Monte Carlo of the parametric g-formula (method gformula, per_protocol only)", {}),
     Key("analysis.gformula.simulated_persons", "integer", "persons drawn (with replacement) from the estimand's population and simulated under each strategy and the natural course", 10000, minimum=100, example=10000),
     Key("analysis.gformula.seed", "integer", "the random seed of the draws (the same in every bootstrap replicate)", 20261202, minimum=0, example=20261202),
+    Key("analysis.variance", "choice", "how standard errors and intervals are formed", "bootstrap", VARIANCES, example="influence",
+        rule="bootstrap: from analysis.bootstrap's replicates; influence: Wald intervals from M-estimation (sandwich) standard errors that account for the estimated propensity, for the rows docs/results.md lists (unadjusted and ipw risks, rates and means, doubly robust means); every other row keeps its bootstrap interval, and no replicate is run when no row needs one"),
     Key("analysis.balance", "mapping", "covariate balance", {}),
     Key("analysis.balance.smd_threshold", "number", "an absolute standardised mean difference above this is flagged", 0.1, example=0.1),
     Key("analysis.primary", "mapping", "the pre-specified primary estimate the report leads with (at a glance, marked in the forest plot)", {}),

@@ -25,6 +25,7 @@ METHODS = ("unadjusted", "ipw", "standardization", "doubly_robust", "gformula")
 PER_PROTOCOL_ONLY = ("gformula",)  # methods of the per_protocol contrast alone (CONTRACTS §5e)
 DEATH = "death"
 BOOTSTRAP_KINDS = ("multinomial", "bayesian")
+VARIANCES = ("bootstrap", "influence")  # analysis.variance
 
 
 class ProtocolError(EmulantError):
@@ -217,6 +218,7 @@ class Analysis:
     smd_threshold: float = 0.1
     primary: Primary = Primary()
     gformula: GFormula = GFormula()
+    variance: str = "bootstrap"  # bootstrap | influence (M-estimation SEs where available)
 
 
 @dataclass(frozen=True)

@@ -12,6 +12,7 @@ from emulant.protocol.model import (
     ESTIMANDS,
     METHODS,
     PER_PROTOCOL_ONLY,
+    VARIANCES,
     Analysis,
     Bootstrap,
     FollowUp,
@@ -44,7 +45,7 @@ def read_estimands(c: Collector, top: dict, strategies: Strategies | None = None
 
 def read_analysis(c: Collector, node: Any, follow: FollowUp, estimands: tuple[str, ...] = ("ATE", "ATT"),
                   contrasts: tuple[str, ...] = ("intention_to_treat",)) -> Analysis:
-    """``analysis``: propensity, weights, horizons, methods, periods, censoring weights, bootstrap, balance, primary."""
+    """``analysis``: propensity, weights, horizons, methods, periods, censoring weights, bootstrap, balance, primary, g-formula, variance."""
     a = c.mapping(node, "analysis", known("analysis"))
     p = c.mapping(a.get("propensity"), "analysis.propensity", known("analysis.propensity"))
     w = c.mapping(a.get("weights"), "analysis.weights", known("analysis.weights"))
@@ -84,6 +85,7 @@ def read_analysis(c: Collector, node: Any, follow: FollowUp, estimands: tuple[st
         read_primary(c, a.get("primary"), methods, estimands, tuple(sorted(set(horizons)))),
         GFormula(c.integer(gf.get("simulated_persons"), "analysis.gformula.simulated_persons", 10000, 100) or 10000,
                  c.integer(gf.get("seed"), "analysis.gformula.seed", 20261202, 0) or 0),
+        variance=c.choice(a.get("variance"), "analysis.variance", VARIANCES, "bootstrap") or "bootstrap",
     )
     return analysis
 

@@ -12,7 +12,7 @@ from emulant.protocol import MeasuredOutcome, Protocol
 from emulant.report import disclosure as dc
 from emulant.report import fmt
 from emulant.report.glance import CENSORING_GAP_PP, censoring_gap
-from emulant.wording import censoring_assumption, methods_note
+from emulant.wording import censoring_assumption, methods_note, variance_note
 
 COMPONENTS = (
     ("eligibility", "Eligibility criteria"),
@@ -115,10 +115,14 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
                      f"{' Hazard ratio: yes.' if a.hazard_ratio else ''} Bootstrap: "
                      f"{a.bootstrap.replicates} replicates, seed {a.bootstrap.seed}, "
                      f"{a.bootstrap.interval} intervals."
-                     + (f" {methods_note(p)}" if methods_note(p) else "")),
+                     + (f" {methods_note(p)}" if methods_note(p) else "")
+                     + (f" {variance_note(p)}" if variance_note(p) else "")),
     }
     if design:
         did["analysis"] += " This is the outcome-blind design report: no outcome was analysed."
+    elif bootstrap and bootstrap.get("requested") in ("0", 0):
+        did["analysis"] += (" This run: no bootstrap replicate (every interval is from the "
+                            "influence function).")
     elif bootstrap:
         did["analysis"] += (f" This run: {bootstrap['completed']} of {bootstrap['requested']} "
                             f"replicates completed, {bootstrap['failed']} failed.")

@@ -280,6 +280,8 @@ def bootstrap(b: dict) -> dict:
     return {"requested": fmt.integer(b.get("requested")), "completed": fmt.integer(b.get("completed")),
             "failed": fmt.integer(b.get("failed")), "seed": fmt.text(b.get("seed")),
             "interval": fmt.text(b.get("interval")), "workers": fmt.text(b.get("workers")),
+            "influence_rows": (fmt.integer(b["influence_rows"])
+                               if b.get("variance") == "influence" else None),
             "failures": [str(f) for f in fails[:10]],
             "non_estimable": [
                 f"{x.get('outcome')}, {x.get('estimand') or 'unadjusted'}, {x.get('method')}, "

@@ -81,3 +81,14 @@ def test_bad_subgroups_named(subgroups, key, words):
 def test_bad_bootstrap_kind_named():
     problems = _problems(analysis={"bootstrap": {"kind": "poisson"}})
     assert any(p.startswith("analysis.bootstrap.kind") for p in problems), problems
+
+
+def test_variance_defaults_to_the_bootstrap_and_reads_influence():
+    assert _protocol().analysis.variance == "bootstrap"
+    assert _protocol(analysis={"variance": "influence"}).analysis.variance == "influence"
+
+
+def test_bad_variance_named_with_the_nearest_choice():
+    problems = _problems(analysis={"variance": "influense"})
+    assert any(p.startswith("analysis.variance") and "did you mean 'influence'?" in p
+               for p in problems), problems
