@@ -342,7 +342,8 @@ def gather_effects(point: PointEstimate, runs: list[BootstrapRun], protocol: Pro
     interval = protocol.analysis.bootstrap.interval
     rows, curves = attach_intervals(point.rows + extra_rows, point.curves, boot, interval)
     if protocol.analysis.variance == "influence":
-        rows, curves = influence_intervals(point.rows + extra_rows, point.curves, rows, curves)
+        rows, curves = influence_intervals(point.rows + extra_rows, point.curves, rows, curves,
+                                           replicates=boot.requested > 0)
     decision = decision_table(rows, boot.row_reps, protocol, interval)
     account = boot.account()
     account["non_estimable"] = non_estimable_account(rows, boot)

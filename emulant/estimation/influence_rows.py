@@ -46,6 +46,8 @@ CONTRAST = "intention_to_treat"
 KEY = "influence_se"  # the point estimate's rows and curve rows carry it until the gather step
 NOTE = "interval: influence function (sandwich SE)"
 FALLBACK = "interval: bootstrap (no influence function for this row)"
+NO_INTERVAL = ("no interval: no influence function for this row and no bootstrap replicate was "
+               "run (analysis.variance: bootstrap gives one)")
 TTE_MEASURES = ("risk", "risk_difference", "risk_ratio", "rate")
 
 
@@ -232,8 +234,10 @@ def attach_influence(sample: AnalysisSample, rows: list[dict], curves: list[dict
     """Add ``influence_se`` to every covered whole-cohort row and curve row of the point estimate
     (frequency weights all 1); returns how many rows got one. A model that prevents it (a
     penalised fit) leaves its rows to the bootstrap, with a log line."""
-    if not np.all(sample.freq == 1):
-        raise ValueError("influence SEs are computed for the point estimate only")
+    if "trial" in sample.cohort.columns or not np.all(sample.freq == 1):
+        log.warning("influence-function SEs assume one row per person with unit weights, not "
+                    "person-trials or sampled non-initiators: every row keeps the bootstrap")
+        return 0
     Zx = standard_design(sample.X)
     try:
         beta = logistic_nuisance(Zx, sample.a, sample.e, "propensity")
@@ -277,10 +281,12 @@ def attach_influence(sample: AnalysisSample, rows: list[dict], curves: list[dict
 
 
 def influence_intervals(point_rows: list[dict], point_curves: list[dict], rows: list[dict],
-                        curves: list[dict]) -> tuple[list[dict], list[dict]]:
+                        curves: list[dict], replicates: bool = True
+                        ) -> tuple[list[dict], list[dict]]:
     """Rows and curve rows with ``influence_se`` get its Wald interval (estimate ± 1.96 SE, on
     the log scale for ratios) and the note saying so, in place of the bootstrap's; the others
-    keep the bootstrap's, with a note saying that too (rows aligned with ``point_rows``)."""
+    keep the bootstrap's, with a note saying that too, or, when no replicate was run
+    (``replicates`` False), that they have no interval (rows aligned with ``point_rows``)."""
     out = []
     for p, r in zip(point_rows, rows, strict=True):
         s = p.get(KEY)
@@ -288,7 +294,8 @@ def influence_intervals(point_rows: list[dict], point_curves: list[dict], rows: 
             r = {k: v for k, v in r.items() if k != KEY}
             if r.get("measure") != "e_value" and r.get("estimate") is not None \
                     and np.isfinite(float(r["estimate"])):
-                r["note"] = f"{r['note']}; {FALLBACK}" if r.get("note") else FALLBACK
+                why = FALLBACK if replicates else NO_INTERVAL
+                r["note"] = f"{r['note']}; {why}" if r.get("note") else why
             out.append(r)
             continue
         r = {k: v for k, v in p.items() if k != KEY}

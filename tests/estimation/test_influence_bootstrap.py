@@ -20,7 +20,7 @@ import pytest
 
 from emulant.cohort import build_cohort
 from emulant.estimation.effects import estimate_effects
-from emulant.estimation.influence_rows import FALLBACK, NOTE
+from emulant.estimation.influence_rows import FALLBACK, NO_INTERVAL, NOTE
 from emulant.extract import open_extract
 from emulant.protocol import load_protocol
 
@@ -97,3 +97,14 @@ def test_rows_without_an_influence_function_keep_the_bootstrap(registry):
     ipw = est[est.method == "ipw"]
     assert ipw.note.str.contains(NOTE, regex=False).all()
     assert res.bootstrap["influence_rows"] == len(est) - len(std)
+
+
+def test_person_trials_get_no_influence_function_and_say_so(registry):
+    # influence functions here assume one row per person: person-trials (a trial column) keep
+    # the bootstrap; with no replicate run the rows have no interval, and their note says why
+    protocol, cohort = registry
+    p = _variant(protocol, protocol.outcomes.primary, ("ipw",), "influence")
+    res = estimate_effects(cohort.assign(trial=0), p, workers=1, progress=False)
+    est = res.estimates[res.estimates.measure != "e_value"]
+    assert res.bootstrap["requested"] == 0 and res.bootstrap["influence_rows"] == 0
+    assert est.se.isna().all() and est.note.str.contains(NO_INTERVAL, regex=False).all()
