@@ -349,6 +349,9 @@ def build_cohort(extract: Extract, protocol: Protocol, steps_only: bool = False)
     not available", Am J Epidemiol 2016;183:758-764, with the exact day rules of §3a.
     """
     con, p = extract.con, protocol
+    if p.strategies.design != "initiators":
+        raise CohortError(f"strategies.design: design {p.strategies.design} is read by the protocol "
+                          "but its cohort is not built yet in this version; use design initiators")
     done = Progress("cohort (time zero, coverage, code windows, eligibility, attrition, table)", 6)
     try:
         _make_init(con, extract, p)

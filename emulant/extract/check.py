@@ -152,7 +152,7 @@ def _column_problems(layouts: dict[str, TableLayout], problems: list[str]) -> No
 
 
 def _referenced_concepts(protocol: Protocol) -> list[str]:
-    names = [a.initiate for a in protocol.strategies.arms]
+    names = [a.initiate for a in protocol.strategies.arms] + [protocol.strategies.index or ""]
     names += [c.concept for c in (*protocol.eligibility.require, *protocol.eligibility.exclude)]
     names += [outcome_name(o) for o in protocol.outcomes.all()] + list(protocol.outcomes.competing)
     names += [c.concept for c in protocol.covariates if c.concept]

@@ -10,7 +10,7 @@ from typing import Any
 
 import yaml
 
-from emulant.protocol.model import Arm, Concept, Covariate, Criterion, MeasuredOutcome, Protocol
+from emulant.protocol.model import NO_START, Arm, Concept, Covariate, Criterion, MeasuredOutcome, Protocol
 
 
 def _date(d: dt.date | None) -> str | None:
@@ -35,7 +35,8 @@ def _outcome(o: str | MeasuredOutcome) -> str | dict[str, Any]:
 
 def _arm(a: Arm) -> dict[str, Any]:
     sustain = None if a.sustain is None else {"gap_days": a.sustain.gap_days, "switch": list(a.sustain.switch)}
-    return {"initiate": a.initiate, "sustain": sustain}
+    return {"initiate": a.initiate or NO_START, "start_within": list(a.start_within) if a.start_within else None,
+            "sustain": sustain}
 
 
 def _covariate(c: Covariate) -> dict[str, Any]:
@@ -63,8 +64,11 @@ def as_input(p: Protocol) -> dict[str, Any]:
                         "age": {"min": e.age_min, "max": e.age_max},
                         "coverage_before_days": e.coverage_before_days,
                         "require": _criteria(e.require), "exclude": _criteria(e.exclude)},
-        "strategies": {"arms": {arm.name: _arm(arm) for arm in s.arms},
-                       "treated": s.treated, "washout_days": s.washout_days, "same_day": s.same_day},
+        "strategies": {"design": s.design, "index": {"concept": s.index} if s.index else None,
+                       "arms": {arm.name: _arm(arm) for arm in s.arms},
+                       "treated": s.treated, "washout_days": s.washout_days, "same_day": s.same_day,
+                       "trial_every_days": s.trial_every_days if s.design == "sequential" else None,
+                       "noninitiator_sample": s.noninitiator_sample if s.design == "sequential" else None},
         "follow_up": {"max_days": p.follow_up.max_days,
                       "administrative_end": _date(p.follow_up.administrative_end)},
         "outcomes": {"primary": _outcome(p.outcomes.primary), "competing": list(p.outcomes.competing),

@@ -115,6 +115,21 @@ class Collector:
                           "after it would let the future decide the past")
         return (int(v[0]), int(v[1]))
 
+    def days(self, v: Any, key: str) -> tuple[int, int] | None:
+        """``[a, b]``: a span of days on or after time zero, ``0 <= a <= b`` (a grace window)."""
+        if v is None:
+            return None
+        if (
+            not isinstance(v, list | tuple)
+            or len(v) != 2
+            or not all(isinstance(x, int) and not isinstance(x, bool) for x in v)
+        ):
+            self.add(key, f"expected [a, b], two whole numbers of days with 0 <= a <= b, got {v!r}")
+            return None
+        if not 0 <= v[0] <= v[1]:
+            self.add(key, f"expected 0 <= a <= b (days from time zero, both ends included), got {list(v)}")
+        return (int(v[0]), int(v[1]))
+
     def listing(self, v: Any, key: str) -> list:
         if v is None:
             return []

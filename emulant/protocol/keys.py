@@ -26,6 +26,7 @@ from emulant.protocol.model import (
     BOOTSTRAP_KINDS,
     BUILTINS,
     CONTRASTS,
+    DESIGNS,
     ESTIMANDS,
     KINDS,
     METHODS,
@@ -36,9 +37,10 @@ from emulant.protocol.model import (
 #: The value types. ``mapping``: fixed keys (rows below it); ``names``: keys the user names, each
 #: value as its ``*`` row says; ``list``: items as its ``[]`` row says; ``outcome``: a concept name
 #: or a measured-outcome mapping; ``codes``: a list of codes or a CSV file name; ``values``: one
-#: value or a list of them; ``quantiles``: ``[low, high]`` with 0 <= low < high <= 1.
+#: value or a list of them; ``quantiles``: ``[low, high]`` with 0 <= low < high <= 1; ``days``:
+#: ``[a, b]`` with 0 <= a <= b, days on or after time zero.
 TYPES = ("mapping", "names", "list", "text", "integer", "number", "boolean", "date", "window",
-         "choice", "concept", "codes", "values", "quantiles", "outcome")
+         "choice", "concept", "codes", "values", "quantiles", "outcome", "days")
 
 
 class _Required:
@@ -132,12 +134,23 @@ KEYS: tuple[Key, ...] = (
     *_criterion("eligibility.exclude", "exclusion"),
     # ------------------------------------------------------------------ strategies
     Key("strategies", "mapping", "the treatment strategies compared", REQUIRED),
+    Key("strategies.design", "choice", "how time zero and the arms are found", "initiators", DESIGNS, example="clone",
+        rule="initiators: time zero is the first initiation, the arm its concept (two starting arms); sequential: a trial starts every trial_every_days, "
+             "one starting arm against one 'none' arm; clone: time zero is the index event, every eligible person is cloned into every arm "
+             "(contrasts [per_protocol] and estimands [ATE] only: clones have no assignment at time zero)"),
+    Key("strategies.index", "mapping", "design clone: the index event whose first record inside the entry window is time zero (required there, only there)", None,
+        example={"concept": "acute_event"}),
+    Key("strategies.index.concept", "concept", "the index event's concept", REQUIRED, example="acute_event",
+        rule="step indexed: a record of the concept inside the entry window, tested once, at the first"),
     Key("strategies.arms", "names", "the arms, in order (exactly two); each name letters, digits and underscores", REQUIRED,
         example={"kestrel": {"initiate": "kestrel"}, "plover": {"initiate": "plover"}}),
     Key("strategies.arms.*", "mapping", "one arm", example={"initiate": "kestrel"}),
-    Key("strategies.arms.*.initiate", "concept", "the concept whose first record starts the arm", REQUIRED, example="kestrel",
-        rule="step initiated: the arm is the one whose concept has the first record in the entry window"),
-    Key("strategies.arms.*.sustain", "mapping", "what staying on the arm's strategy means (needed on every arm by contrast per_protocol)", None,
+    Key("strategies.arms.*.initiate", "concept", "the concept whose first record starts the arm, or none: the arm's strategy is to start no other arm's concept (designs sequential and clone)", REQUIRED, example="kestrel",
+        rule="step initiated: the arm is the one whose concept has the first record in the entry window; a 'none' arm deviates on its first record of another arm's concept (started)"),
+    Key("strategies.arms.*.start_within", "days", "design clone: the grace window, days after time zero in which the arm's concept must start (required on every clone arm that starts a concept)", None,
+        example=[0, 90],
+        rule="s the first day >= 0 with a record of the concept: the clone deviates on day s when s < a (started_early), on day b + 1 when no s <= b (not_started)"),
+    Key("strategies.arms.*.sustain", "mapping", "what staying on the arm's strategy means (needed on every starting arm by contrast per_protocol in designs initiators and sequential; optional on a clone arm)", None,
         example={"gap_days": 60}),
     Key("strategies.arms.*.sustain.gap_days", "integer", "the longest gap in supply, in days, before the person counts as stopped", REQUIRED, minimum=0, example=60,
         rule="supply: each dispensing of the initiating concept supplies days_supply days (30 when absent), refills carried over; the person stops on day c + gap_days + 1, c the last covered day before a longer gap"),
@@ -145,11 +158,18 @@ KEYS: tuple[Key, ...] = (
         default_note="the other arms' initiating concepts",
         rule="the person switches on the first day >= 1 with a record of a switch concept; deviation_day is the earlier of stop and switch"),
     Key("strategies.arms.*.sustain.switch[]", "concept", "one switch concept (not the arm's own initiating concept)", example="plover"),
-    Key("strategies.treated", "text", "the arm whose members define the ATT (one of the arms)", REQUIRED, example="kestrel"),
+    Key("strategies.treated", "text", "the arm whose members define the ATT (one of the arms)", None, example="kestrel",
+        default_note="required in design initiators; sequential: the starting arm; clone: the first arm"),
     Key("strategies.washout_days", "integer", "new users: no record of any arm's concept this many days before time zero", 365, minimum=0, example=365,
         rule="step washout: no record of any arm's concept in [-washout_days, -1]"),
-    Key("strategies.same_day", "choice", "what to do when both arms start on the same day", "exclude", ("exclude", "first_listed"), example="exclude",
+    Key("strategies.same_day", "choice", "what to do when both arms start on the same day (design initiators)", "exclude", ("exclude", "first_listed"), example="exclude",
         rule="step same_day: exclude leaves such persons out; first_listed puts them in the arm listed first"),
+    Key("strategies.trial_every_days", "integer", "design sequential: days between the starts of consecutive trials (only there)", 30, minimum=1, example=30,
+        default_note="30 in design sequential; not set in the other designs",
+        rule="trial j starts on entry.start + j * trial_every_days while on or before entry.end; a candidate who starts the concept in days 0 .. trial_every_days - 1 is in the starting arm"),
+    Key("strategies.noninitiator_sample", "number", "design sequential: the share (0 < share <= 1) of each trial's non-initiators kept (only there)", 1.0, example=0.25,
+        default_note="1.0 in design sequential; not set in the other designs",
+        rule="a kept non-initiator carries the weight 1/share; the sample is drawn from the bootstrap seed"),
     # ------------------------------------------------------------------ follow_up
     Key("follow_up", "mapping", "how long persons are followed", {}),
     Key("follow_up.max_days", "integer", "the longest follow-up, in days", 1095, minimum=1, example=1095,
@@ -202,9 +222,11 @@ KEYS: tuple[Key, ...] = (
         default_note="binary for any, continuous otherwise"),
     Key("time_varying[].missing", "choice", "what a missing value does (an indicator column)", "indicator", ("indicator",), example="indicator"),
     # ------------------------------------------------------------------ estimands, contrasts
-    Key("estimands", "list", "the populations the effect is estimated for", ["ATE", "ATT"], example=["ATE", "ATT"]),
+    Key("estimands", "list", "the populations the effect is estimated for", ["ATE", "ATT"], example=["ATE", "ATT"],
+        default_note="[ATE, ATT]; design clone: [ATE]"),
     Key("estimands[]", "choice", "ATE: everyone eligible; ATT: those who started the treated arm; ATO: overlap weights", None, ESTIMANDS, example="ATE"),
-    Key("contrasts", "list", "the causal contrasts", ["intention_to_treat"], example=["intention_to_treat"]),
+    Key("contrasts", "list", "the causal contrasts", ["intention_to_treat"], example=["intention_to_treat"],
+        default_note="[intention_to_treat]; design clone: [per_protocol]"),
     Key("contrasts[]", "choice", "one contrast: intention_to_treat (as assigned at time zero) or per_protocol (follow-up ends when a person deviates; needs sustain on every arm)", None, CONTRASTS, example="intention_to_treat"),
     # ------------------------------------------------------------------ analysis
     Key("analysis", "mapping", "the analysis plan", {}),

@@ -26,6 +26,8 @@ PER_PROTOCOL_ONLY = ("gformula",)  # methods of the per_protocol contrast alone 
 DEATH = "death"
 BOOTSTRAP_KINDS = ("multinomial", "bayesian")
 VARIANCES = ("bootstrap", "influence")  # analysis.variance
+DESIGNS = ("initiators", "sequential", "clone")  # CONTRACTS §3a, §5c, §5d
+NO_START = "none"  # `initiate: none`: the arm's strategy is not to start any other arm's concept
 
 
 class ProtocolError(EmulantError):
@@ -81,8 +83,14 @@ class Sustain:
 @dataclass(frozen=True)
 class Arm:
     name: str
-    initiate: str  # concept name
+    initiate: str  # concept name; "" for `initiate: none` (see `starts`)
     sustain: Sustain | None = None  # None: the arm has no adherence rule (intention to treat only)
+    start_within: tuple[int, int] | None = None  # clone design: start in days a..b (CONTRACTS §5d)
+
+    @property
+    def starts(self) -> bool:
+        """False for an ``initiate: none`` arm (its strategy: start no other arm's concept)."""
+        return bool(self.initiate)
 
 
 @dataclass(frozen=True)
@@ -91,6 +99,20 @@ class Strategies:
     treated: str
     washout_days: int = 365
     same_day: str = "exclude"  # exclude | first_listed
+    design: str = "initiators"  # initiators (§3a) | sequential (§5c) | clone (§5d)
+    index: str | None = None  # clone: the concept whose first record in the entry window is time zero
+    trial_every_days: int = 30  # sequential: days between trial starts
+    noninitiator_sample: float = 1.0  # sequential: share of each trial's non-initiators kept
+
+    @property
+    def starting_arms(self) -> tuple[Arm, ...]:
+        """The arms that start a concept (all but ``initiate: none``)."""
+        return tuple(a for a in self.arms if a.starts)
+
+    @property
+    def initiating_concepts(self) -> tuple[str, ...]:
+        """The arms' initiating concepts, in arm order, each once (``none`` arms have none)."""
+        return tuple(dict.fromkeys(a.initiate for a in self.arms if a.starts))
 
     @property
     def comparator(self) -> str:

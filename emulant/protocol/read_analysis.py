@@ -29,17 +29,29 @@ ADJUSTED = tuple(m for m in METHODS if m != "unadjusted")  # what analysis.prima
 
 def read_estimands(c: Collector, top: dict, strategies: Strategies | None = None) -> tuple[tuple[str, ...], tuple[str, ...]]:
     """``estimands`` and ``contrasts``, with their defaults; ``per_protocol`` needs ``sustain``
-    on every arm (CONTRACTS §5b)."""
-    estimands = tuple(c.choice(x, f"estimands[{i}]", ESTIMANDS, "ATE") for i, x in enumerate(c.listing(top.get("estimands"), "estimands"))) or ("ATE", "ATT")
-    contrasts = tuple(c.choice(x, f"contrasts[{i}]", CONTRASTS, "intention_to_treat") for i, x in enumerate(c.listing(top.get("contrasts"), "contrasts"))) or ("intention_to_treat",)
+    on every starting arm of designs initiators and sequential (CONTRACTS §5b, §5c); design clone
+    allows ``[per_protocol]`` and ``[ATE]`` only (and takes them as its defaults, §5d)."""
+    clone = strategies is not None and strategies.design == "clone"
+    estimands = tuple(c.choice(x, f"estimands[{i}]", ESTIMANDS, "ATE") for i, x in enumerate(c.listing(top.get("estimands"), "estimands"))) \
+        or (("ATE",) if clone else ("ATE", "ATT"))
+    contrasts = tuple(c.choice(x, f"contrasts[{i}]", CONTRASTS, "intention_to_treat") for i, x in enumerate(c.listing(top.get("contrasts"), "contrasts"))) \
+        or (("per_protocol",) if clone else ("intention_to_treat",))
     if len(set(contrasts)) < len(contrasts):
         c.add("contrasts", f"a contrast is listed twice: {', '.join(contrasts)}")
         contrasts = tuple(dict.fromkeys(contrasts))
-    if "per_protocol" in contrasts and strategies is not None:
+    if clone:
+        why = "clones have no assignment at time zero (every person follows every arm until deviating)"
+        if contrasts != ("per_protocol",):
+            c.add("contrasts", f"design clone allows [per_protocol] only, got [{', '.join(contrasts)}]: {why}, "
+                               "so there is no intention-to-treat contrast")
+        if set(estimands) != {"ATE"}:
+            c.add("estimands", f"design clone allows [ATE] only, got [{', '.join(estimands)}]: {why}, "
+                               "so there is no treated or overlap population to weight to")
+    elif "per_protocol" in contrasts and strategies is not None:
         for a in strategies.arms:
-            if a.sustain is None:
+            if a.sustain is None and a.starts:
                 c.add(f"strategies.arms.{a.name}", "contrast per_protocol needs sustain: {gap_days: N} "
-                      f"on every arm; arm '{a.name}' has none (what staying on it means)")
+                      f"on every starting arm; arm '{a.name}' has none (what staying on it means)")
     return estimands, contrasts
 
 

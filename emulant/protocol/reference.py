@@ -54,6 +54,7 @@ TYPE_WORDS = {
     "window": "window [a, b]", "choice": "one of the values", "concept": "concept name",
     "codes": "codes: list or CSV file", "values": "value or list of values",
     "quantiles": "[low, high], 0 <= low < high <= 1", "outcome": "concept name or mapping",
+    "days": "[a, b], 0 <= a <= b",
 }
 
 

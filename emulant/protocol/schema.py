@@ -59,6 +59,8 @@ def _plain(k: Key) -> dict[str, Any]:
         # [a, b]: whole days, b <= 0 (a record after the day it describes would decide the past)
         return {"type": "array", "items": [{"type": "integer"}, {"type": "integer", "maximum": 0}],
                 "minItems": 2, "maxItems": 2}
+    if t == "days":  # [a, b], 0 <= a <= b: days on or after time zero (a <= b is the parser's)
+        return {"type": "array", "items": {"type": "integer", "minimum": 0}, "minItems": 2, "maxItems": 2}
     if t == "quantiles":
         return {"type": "array", "items": {"type": "number", "minimum": 0, "maximum": 1},
                 "minItems": 2, "maxItems": 2}

@@ -19,7 +19,7 @@ from emulant.protocol import keys, load_protocol, parse_protocol
 from emulant.protocol.as_input import as_input, as_input_yaml
 
 ROOT = Path(__file__).resolve().parents[2]
-EXAMPLES = [*sorted((ROOT / "config" / "protocols").glob("*.yaml")), Path(__file__).with_name("every_key.yaml")]
+EXAMPLES = [*sorted((ROOT / "config" / "protocols").glob("*.yaml")), *sorted(Path(__file__).parent.glob("every_key*.yaml"))]
 
 
 def _bare(p):

@@ -22,7 +22,7 @@ from emulant.protocol.as_input import as_input
 from emulant.protocol.collector import Collector
 
 ROOT = Path(__file__).resolve().parents[2]
-EXAMPLES = [*sorted((ROOT / "config" / "protocols").glob("*.yaml")), Path(__file__).with_name("every_key.yaml")]
+EXAMPLES = [*sorted((ROOT / "config" / "protocols").glob("*.yaml")), *sorted(Path(__file__).parent.glob("every_key*.yaml"))]
 HOW = ("emulant/protocol/keys.py is the one list of protocol keys: add a Key row there (type, "
        "default, allowed values, meaning, example, rule), take the mapping's keys in the reader "
        "from keys.known()/keys.required(), add the key to emulant/protocol/as_input.py, then run "
@@ -31,7 +31,7 @@ HOW = ("emulant/protocol/keys.py is the one list of protocol keys: add a Key row
 #: Collector method -> the table types it may read.
 METHOD_TYPES = {"mapping": {"mapping", "outcome", "names"}, "integer": {"integer"}, "number": {"number"},
                 "boolean": {"boolean"}, "choice": {"choice"}, "text": {"text"}, "date": {"date"},
-                "window": {"window"}, "listing": {"list"}}
+                "window": {"window"}, "listing": {"list"}, "days": {"days"}}
 
 
 class Recorder(Collector):
@@ -71,6 +71,10 @@ class Recorder(Collector):
     def window(self, v, key):
         self._rec("window", key)
         return super().window(v, key)
+
+    def days(self, v, key):
+        self._rec("days", key)
+        return super().days(v, key)
 
     def listing(self, v, key):
         self._rec("listing", key)

@@ -22,7 +22,7 @@ from emulant.protocol.reference import DOC_FILE, SCHEMA_FILE, protocol_markdown
 from emulant.protocol.schema import protocol_schema, schema_text
 
 ROOT = Path(__file__).resolve().parents[2]
-EXAMPLES = [*sorted((ROOT / "config" / "protocols").glob("*.yaml")), Path(__file__).with_name("every_key.yaml")]
+EXAMPLES = [*sorted((ROOT / "config" / "protocols").glob("*.yaml")), *sorted(Path(__file__).parent.glob("every_key*.yaml"))]
 REGENERATE = "run `python -m emulant.protocol.reference` and commit the rewritten files"
 
 
