@@ -303,6 +303,17 @@ def finish_covariates(cohort: pd.DataFrame, protocol: Protocol) -> pd.DataFrame:
     return out
 
 
+TRIAL = "trial"
+
+
+def adjustment_set(protocol: Protocol, cohort: pd.DataFrame) -> tuple:
+    """The covariates of the propensity and outcome models: the protocol's, and in a cohort of
+    person-trials (CONTRACTS §5c) the trial's calendar time as ``trial`` (continuous: trial
+    ``j`` starts ``j * trial_every_days`` days after the entry window opens)."""
+    covs = tuple(protocol.covariates)
+    return (*covs, TRIAL) if TRIAL in cohort.columns else covs
+
+
 def covariate_kinds(protocol: Protocol, cohort: pd.DataFrame,
                     covariates: tuple | None = None) -> dict[str, str]:
     """Each covariate's kind: the protocol's ``kind``, else decided from the cohort (or from
@@ -319,6 +330,8 @@ def covariate_kinds(protocol: Protocol, cohort: pd.DataFrame,
         if flag in cohort.columns:
             values = values[cohort[flag] == 0]
         kinds[cov.name] = _kind_of(values, cov)
+    if covariates is None and TRIAL in cohort.columns:
+        kinds[TRIAL] = "continuous"
     return kinds
 
 

@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
-from emulant.cohort.covariates import covariate_kinds
+from emulant.cohort.covariates import adjustment_set, covariate_kinds
 from emulant.errors import EmulantError, NonConvergenceWarning, ReplicateFailure
 from emulant.estimation.bootstrap import (
     ROW_KEY,
@@ -240,7 +240,7 @@ def _prepare(cohort: pd.DataFrame, protocol: Protocol
     check_cohort(cohort, protocol)
     try:
         kinds = covariate_kinds(protocol, cohort)
-        design = build_design(cohort, protocol.covariates, kinds,
+        design = build_design(cohort, adjustment_set(protocol, cohort), kinds,
                               protocol.analysis.propensity.continuous)
     except DesignError as exc:
         raise EstimationError(f"the point estimate cannot be computed: {exc}") from None

@@ -28,6 +28,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from emulant.cohort.covariates import adjustment_set
 from emulant.models.design import DesignError, build_design
 from emulant.protocol import Protocol
 
@@ -98,7 +99,8 @@ def prepare_levels(cohort: pd.DataFrame, protocol: Protocol, kinds: dict[str, st
         sub = cohort.iloc[lv.rows].reset_index(drop=True)
         spec = protocol.subgroups[lv.subgroup]
         # the covariate that defines a level is constant in it, unless it was cut
-        covs = [c for c in protocol.covariates if spec.cut or c.name != spec.covariate]
+        covs = [c for c in adjustment_set(protocol, sub)
+                if spec.cut or getattr(c, "name", c) != spec.covariate]
         try:
             design = build_design(sub, covs, kinds, protocol.analysis.propensity.continuous)
         except DesignError as exc:

@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from emulant import columns
-from emulant.cohort.covariates import covariate_kinds
+from emulant.cohort.covariates import adjustment_set, covariate_kinds
 from emulant.errors import EmulantError
 from emulant.models.design import build_design
 from emulant.models.propensity import PropensityModel
@@ -132,7 +132,8 @@ def resolve_kinds(protocol: Any, cohort: pd.DataFrame) -> dict[str, str]:
 def design_for(cohort: pd.DataFrame, protocol: Any):
     """The propensity :class:`~emulant.models.propensity.Design` the protocol asks for."""
     kinds = resolve_kinds(protocol, cohort)
-    return build_design(cohort, protocol.covariates, kinds, protocol.analysis.propensity.continuous)
+    return build_design(cohort, adjustment_set(protocol, cohort), kinds,
+                        protocol.analysis.propensity.continuous)
 
 
 @dataclass
@@ -160,17 +161,21 @@ def fit_weights(cohort: pd.DataFrame, protocol: Any) -> WeightsFit:
     X = design.transform(cohort)
     a = treated_indicator(cohort)
     done.step()
-    model = PropensityModel().fit(X, a, columns=design.columns)
+    # sampled non-initiators stand for 1/share person-trials each (CONTRACTS §5c)
+    sw = cohort["sample_weight"].to_numpy(float) if "sample_weight" in cohort.columns else None
+    model = PropensityModel().fit(X, a, columns=design.columns, sample_weight=sw)
     e = model.predict(X)
     done.step()
     settings = protocol.analysis.weights
     w = {}
     for est in protocol.estimands:
-        w[est] = estimand_weights(a, e, est, settings.stabilize, settings.truncate)
+        w[est] = estimand_weights(a, e, est, settings.stabilize, settings.truncate,
+                                  sample_weight=sw)
         done.step()
     done.close()
-    out = pd.DataFrame({"person_id": cohort["person_id"].to_numpy(),
-                        "arm": cohort["arm"].to_numpy(), "propensity": e})
+    out = pd.DataFrame({c: cohort[c].to_numpy() for c in ("person_id", "trial", "arm")
+                        if c in cohort.columns})
+    out["propensity"] = e
     for est, v in w.items():
         out[columns.weight(est)] = v
     truncated = {est: settings.truncate is not None and est != "ATO" for est in w}

@@ -289,3 +289,12 @@ def test_person_trials_person_by_person_against_the_contract_read_literally(tmp_
         gone = set(steps[1:k + 1])
         assert res.attrition.remaining[k] == sum(a not in gone for a in want.values()), step
         assert res.attrition.persons[k] == len({i for (i, _), a in want.items() if a not in gone})
+
+
+def test_propensity_model_includes_the_trials_calendar_time(built):
+    from emulant.models.weights import fit_weights
+
+    p, _, res = built
+    fit = fit_weights(res.cohort, p)
+    assert "trial" in fit.design.columns  # beside the protocol's covariates (age)
+    assert fit.table[["person_id", "trial"]].equals(res.cohort[["person_id", "trial"]])
