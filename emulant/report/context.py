@@ -17,6 +17,7 @@ from emulant.report import disclosure as dc
 from emulant.report import gformula as gformula_part
 from emulant.report.compact import compact_tables
 from emulant.report.curve_steps import curve_rule_text
+from emulant.report.trials import trials_section
 from emulant.report.forest import forest_figure, forest_rows
 from emulant.report.glance import glance
 from emulant.report.load import read_results
@@ -119,6 +120,7 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
     att = tables.attrition(raw["attrition"], m) if raw["attrition"] is not None else None
     ctx["attrition"] = att
     ctx["attrition_svg"] = figures.attrition_figure(att) if att else None
+    ctx["trials"] = trials_section(raw["cohort"], p)  # design sequential only
 
     base = None
     if raw["cohort"] is not None:

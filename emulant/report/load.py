@@ -43,7 +43,7 @@ def _csv(path: Path, need: tuple[str, ...]) -> pd.DataFrame:
 
 def design_columns(protocol: Protocol) -> list[str]:
     """The cohort columns the outcome-blind design report may read: arm and covariates."""
-    cols = ["person_id", "arm"]
+    cols = ["person_id", "arm", "trial", "time_zero", "sample_weight"]  # trial: §5c person-trials
     for c in protocol.covariates:
         cols.append(c.name)
         if c.may_be_missing:

@@ -49,7 +49,10 @@ def attrition(df: pd.DataFrame, min_cell: int) -> list[dict]:
     for i, row in enumerate(df.itertuples(index=False)):
         out.append({"step": str(row.step), "description": fmt.text(row.description),
                     "remaining": dc.show_count(rem[i], min_cell, hr[i]),
-                    "excluded": "" if i == 0 else dc.show_count(exc[i], min_cell, hx[i])})
+                    "excluded": "" if i == 0 else dc.show_count(exc[i], min_cell, hx[i]),
+                    # person-trials (design sequential): the distinct persons beside the count
+                    "persons": dc.show_count(getattr(row, "persons"), min_cell)
+                    if "persons" in df.columns else None})
     return out
 
 
