@@ -1,6 +1,21 @@
-"""The cohort stage: eligibility and time zero in DuckDB (:mod:`.eligibility`) and covariates
-summarised over windows relative to time zero (:mod:`.covariates`)."""
+"""The cohort stage: eligibility and time zero in DuckDB (:mod:`.eligibility`; the sequential
+design's person-trials in :mod:`.sequential`) and covariates summarised over windows relative to
+time zero (:mod:`.covariates`)."""
 
-from emulant.cohort.eligibility import CohortError, CohortResult, build_cohort
+from emulant.cohort.eligibility import CohortError, CohortResult
+from emulant.cohort.eligibility import build_cohort as _build_initiators
+from emulant.cohort.sequential import build_sequential, plan_of
+from emulant.extract import Extract
+from emulant.protocol import Protocol
+
+
+def build_cohort(extract: Extract, protocol: Protocol, steps_only: bool = False) -> CohortResult:
+    """The cohort of the protocol's design: :func:`emulant.cohort.eligibility.build_cohort`
+    (initiators, CONTRACTS §3a) or :func:`emulant.cohort.sequential.build_sequential`
+    (sequential, §5c: one row per person-trial)."""
+    if protocol.strategies.design == "sequential":
+        return build_sequential(extract, protocol, plan_of(protocol), steps_only)
+    return _build_initiators(extract, protocol, steps_only)
+
 
 __all__ = ["CohortError", "CohortResult", "build_cohort"]

@@ -74,6 +74,16 @@ class TrialPlan:
     seed: int = 0
 
 
+def plan_of(protocol: Protocol) -> TrialPlan:
+    """The :class:`TrialPlan` a protocol of design sequential states (the sampling seed is the
+    bootstrap's)."""
+    st = protocol.strategies
+    start = next(a.name for a in st.arms if a.starts)
+    none = next(a.name for a in st.arms if not a.starts)
+    return TrialPlan(start, none, st.trial_every_days, st.noninitiator_sample,
+                     protocol.analysis.bootstrap.seed)
+
+
 def trial_starts(start: dt.date, end: dt.date, every_days: int) -> list[dt.date]:
     """``t_j = start + j * every_days`` for every ``t_j <= end`` (j = 0, 1, ...)."""
     if every_days < 1:

@@ -17,10 +17,10 @@ from emulant.report import disclosure as dc
 from emulant.report import gformula as gformula_part
 from emulant.report.compact import compact_tables
 from emulant.report.curve_steps import curve_rule_text
-from emulant.report.trials import trials_section
 from emulant.report.forest import forest_figure, forest_rows
 from emulant.report.glance import glance
 from emulant.report.load import read_results
+from emulant.report.trials import trials_section
 
 SECTIONS = (
     ("question", "The question"),

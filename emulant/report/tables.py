@@ -51,7 +51,7 @@ def attrition(df: pd.DataFrame, min_cell: int) -> list[dict]:
                     "remaining": dc.show_count(rem[i], min_cell, hr[i]),
                     "excluded": "" if i == 0 else dc.show_count(exc[i], min_cell, hx[i]),
                     # person-trials (design sequential): the distinct persons beside the count
-                    "persons": dc.show_count(getattr(row, "persons"), min_cell)
+                    "persons": dc.show_count(row.persons, min_cell)
                     if "persons" in df.columns else None})
     return out
 

@@ -13,10 +13,12 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from emulant.cohort import build_cohort
 from emulant.cohort.covariates import CohortError
 from emulant.cohort.sequential import (
     TrialPlan,
     build_sequential,
+    plan_of,
     sample_noninitiators,
     trial_starts,
 )
@@ -35,21 +37,20 @@ def t(j: int, k: int = 0) -> str:
 PROTOCOL = {
     "study": {"id": "sequential-test"},
     "concepts": {"kestrel": {"source": "dispensings", "codes": ["KST"]},
-                 "placeholder": {"source": "dispensings", "codes": ["ZZZ"]},
                  "kidney": {"source": "diagnoses", "codes": ["KD1"]},
                  "hf": {"source": "diagnoses", "codes": ["HF5"]}},
     "eligibility": {"entry": {"start": "2018-01-01", "end": "2018-06-30"}, "age": {"min": 40},
                     "coverage_before_days": 365,
                     "exclude": [{"concept": "kidney", "window": [-1825, 0]}]},
-    "strategies": {"arms": {"kestrel": {"initiate": "kestrel"},
-                            "no_kestrel": {"initiate": "placeholder"}},
-                   "treated": "kestrel", "washout_days": 365},
+    "strategies": {"design": "sequential",
+                   "arms": {"kestrel": {"initiate": "kestrel"}, "no_kestrel": {"initiate": "none"}},
+                   "treated": "kestrel", "washout_days": 365, "trial_every_days": 30},
     "follow_up": {"max_days": 365, "administrative_end": "2019-12-31"},
     "outcomes": {"primary": "hf", "competing": ["death"]},
     "covariates": [{"name": "age", "builtin": "age"}],
     "analysis": {"horizons_days": [365]},
 }
-PLAN = TrialPlan("kestrel", "no_kestrel", EVERY)
+PLAN = TrialPlan("kestrel", "no_kestrel", EVERY)  # what plan_of reads from PROTOCOL
 S, N = "kestrel", "no_kestrel"
 # person -> what happens at trials 0..6: an arm, or the step the person-trial leaves at
 EXPECTED = {
@@ -105,7 +106,8 @@ def built(tmp_path_factory):
     folder = write_extract(tmp_path_factory.mktemp("seq") / "extract")
     p = parse_protocol(PROTOCOL)
     ex = open_extract(folder, p)
-    return p, ex, build_sequential(ex, p, PLAN)
+    assert plan_of(p) == TrialPlan("kestrel", "no_kestrel", EVERY, 1.0, p.analysis.bootstrap.seed)
+    return p, ex, build_cohort(ex, p)
 
 
 def test_trial_starts():
