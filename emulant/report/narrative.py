@@ -10,7 +10,7 @@ import pandas as pd
 
 from emulant.protocol import MeasuredOutcome, Protocol
 from emulant.report import disclosure as dc
-from emulant.report import fmt
+from emulant.report import fmt, trials
 from emulant.report.glance import CENSORING_GAP_PP, censoring_gap
 from emulant.wording import censoring_assumption, methods_note, variance_note
 
@@ -118,6 +118,14 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
                      + (f" {methods_note(p)}" if methods_note(p) else "")
                      + (f" {variance_note(p)}" if variance_note(p) else "")),
     }
+    if trials.is_sequential(p):
+        did.update(trials.emulation(p, _concept))
+        did["assignment"] = did["assignment"].replace(
+            " with a ", " and the trial's calendar time (trial, continuous) with a ", 1)
+        if attrition:
+            did["eligibility"] = did["eligibility"].replace(
+                flow, f" {attrition[-1]['remaining']} of {attrition[0]['remaining']} "
+                "person-trials were eligible and kept (see the attrition table).")
     if design:
         did["analysis"] += " This is the outcome-blind design report: no outcome was analysed."
     elif bootstrap and bootstrap.get("requested") in ("0", 0):

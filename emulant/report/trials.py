@@ -38,7 +38,7 @@ def trials_section(cohort: pd.DataFrame | None, protocol: Protocol) -> dict | No
 
 
 def is_sequential(p: Protocol) -> bool:
-    return getattr(p.strategies, "design", "initiators") == "sequential"
+    return p.strategies.design == "sequential"
 
 
 def emulation(p: Protocol, concept) -> dict[str, str]:
