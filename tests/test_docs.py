@@ -91,6 +91,7 @@ def test_worked_example_of_the_initiators_design(tmp_path):
     from emulant.protocol import load_protocol
 
     text = (DOCS / "designs.md").read_text().split("The example's `attrition.csv`:")[1]
+    text = text.split("\n## ")[0]  # up to the next design's section
     documented = [tuple(c.strip() for c in ln.strip("|").split("|")) for ln in text.splitlines()
                   if ln.startswith("| ") and not ln.startswith("| step")]
     protocol = load_protocol(ROOT / "config" / "protocols" / "demo.yaml")
