@@ -67,6 +67,10 @@ def shareable_attrition(df: pd.DataFrame, min_cell: int) -> pd.DataFrame:
     out = df.copy()
     out["remaining"] = [r for r, _ in shown]
     out["excluded"] = [x for _, x in shown]
+    if "persons" in df.columns:  # design sequential: the distinct persons are a chain of their own
+        per = [float(x) for x in pd.to_numeric(df["persons"], errors="coerce")]
+        left = [0.0] + [a - b for a, b in zip(per[:-1], per[1:], strict=True)]
+        out["persons"] = [r for r, _ in dc.shown_attrition(per, left, min_cell)]
     return out
 
 

@@ -45,14 +45,18 @@ def attrition(df: pd.DataFrame, min_cell: int) -> list[dict]:
     rem = [float(x) for x in df["remaining"]]
     exc = [0.0 if fmt.missing(x) else float(x) for x in df["excluded"]]
     hr, hx = dc.suppress_attrition(rem, exc, min_cell)
+    per = [float(x) for x in df["persons"]] if "persons" in df.columns else None
+    if per is not None:  # design sequential: the distinct persons, suppressed as a chain too
+        hp, _ = dc.suppress_attrition(per, [0.0] + [a - b for a, b in zip(per[:-1], per[1:],
+                                                                           strict=True)], min_cell)
     out = []
     for i, row in enumerate(df.itertuples(index=False)):
         out.append({"step": str(row.step), "description": fmt.text(row.description),
                     "remaining": dc.show_count(rem[i], min_cell, hr[i]),
                     "excluded": "" if i == 0 else dc.show_count(exc[i], min_cell, hx[i]),
                     # person-trials (design sequential): the distinct persons beside the count
-                    "persons": dc.show_count(row.persons, min_cell)
-                    if "persons" in df.columns else None})
+                    "persons": dc.show_count(per[i], min_cell, hp[i])
+                    if per is not None else None})
     return out
 
 

@@ -59,3 +59,18 @@ def test_target_trial_table_states_the_design_and_time_zero():
     assert "sampled at a share of 0.5 (weight 2)" in text
     assert "8 of 12 person-trials were eligible" in text
     assert "the trial's calendar time" in text
+
+
+def test_distinct_persons_are_suppressed_as_a_chain():
+    from emulant.audit.shareable import shareable_attrition
+    from emulant.report.tables import attrition
+
+    # one person leaves at 'alive' (20 -> 19): two shown neighbours would reveal that 1
+    att = pd.DataFrame({"step": ["person_trials", "alive", "age"], "description": ["", "", ""],
+                        "remaining": [200, 180, 160], "excluded": [0, 20, 20],
+                        "persons": [20, 19, 19]})
+    shown = [r["persons"] for r in attrition(att, 5)]
+    shared = shareable_attrition(att, 5)["persons"].tolist()
+    assert shown == shared
+    assert not (shown[0].isdigit() and shown[1].isdigit())
+    assert shown[0] == "20" or shown[1] == "19"  # only what is needed is hidden
