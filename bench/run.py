@@ -8,7 +8,7 @@ import time
 
 MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_weights", "bench_effects",
            "bench_survival", "bench_scale", "bench_coverage", "bench_gformula",
-           "bench_influence")
+           "bench_influence", "bench_sequential")
 
 
 def main(argv: list[str] | None = None) -> int:
