@@ -242,6 +242,10 @@ def build_sequential(extract: Extract, protocol: Protocol, plan: TrialPlan,
     Rodríguez, Cantero et al., Stat Methods Med Res 2013;22:70-96.
     """
     con, p, e = extract.con, protocol, protocol.eligibility
+    if p.per_protocol:
+        raise CohortError("contrasts: design sequential estimates intention_to_treat in this "
+                          "version; its per_protocol contrast (person-time of person-trials) is "
+                          "not built yet: use contrasts: [intention_to_treat]")
     starts = trial_starts(e.entry_start, e.entry_end, plan.every_days)
     if not starts:
         raise CohortError(f"eligibility.entry: no trial starts from {e.entry_start} to "

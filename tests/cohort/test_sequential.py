@@ -300,3 +300,13 @@ def test_propensity_model_includes_the_trials_calendar_time(built):
     fit = fit_weights(res.cohort, p)
     assert "trial" in fit.design.columns  # beside the protocol's covariates (age)
     assert fit.table[["person_id", "trial"]].equals(res.cohort[["person_id", "trial"]])
+
+
+def test_per_protocol_is_refused_with_a_clear_message(tmp_path):
+    folder = write_extract(tmp_path / "extract")
+    d = {**PROTOCOL, "strategies": {**PROTOCOL["strategies"], "arms": {
+        "kestrel": {"initiate": "kestrel", "sustain": {"gap_days": 30}},
+        "no_kestrel": {"initiate": "none"}}}, "contrasts": ["intention_to_treat", "per_protocol"]}
+    p = parse_protocol(d)
+    with pytest.raises(CohortError, match="use contrasts: \\[intention_to_treat\\]"):
+        build_cohort(open_extract(folder, p), p)
