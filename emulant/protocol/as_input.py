@@ -10,7 +10,15 @@ from typing import Any
 
 import yaml
 
-from emulant.protocol.model import NO_START, Arm, Concept, Covariate, Criterion, MeasuredOutcome, Protocol
+from emulant.protocol.model import (
+    NO_START,
+    Arm,
+    Concept,
+    Covariate,
+    Criterion,
+    MeasuredOutcome,
+    Protocol,
+)
 
 
 def _date(d: dt.date | None) -> str | None:

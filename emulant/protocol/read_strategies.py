@@ -10,7 +10,6 @@ from emulant.protocol.keys import known, required
 from emulant.protocol.model import DESIGNS, NO_START, Arm, Concept, FollowUp, Strategies, Sustain
 from emulant.protocol.read_concepts import need_concept
 
-
 #: What each design allows, said in every message about it.
 ALLOWS = {
     "initiators": "design initiators compares two starting arms, each with `initiate: <concept>`, "
