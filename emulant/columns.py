@@ -10,6 +10,7 @@ cohort.parquet (one row per person):
     died_before__<m>                          -- 0/1: died on a day from 0 to at_day - 1 (measured outcome m)
     coverage_end_day                          -- last day of the merged coverage period holding day 0
     stop_day, switch_day, deviation_day, deviation_reason   -- with per_protocol only (§5b)
+    initiation_day                            -- design clone only (§5d): one row per person and arm
 periods.parquet: person_id, arm, period, start_day, deviated, each time-varying covariate (and
     <name>_missing where its value may be missing) -- with per_protocol only (§5g).
 weights.parquet: person_id, arm, propensity, weight_<ESTIMAND> for each estimand of the protocol.
@@ -58,5 +59,9 @@ SWITCH_DAY = "switch_day"  # the first day >= 1 with a record of a switch concep
 DEVIATION_DAY = "deviation_day"  # the earlier of the two, empty after end_day
 DEVIATION_REASON = "deviation_reason"  # stopped | switched (switched on a tie) | empty
 DEVIATION_REASONS = ("stopped", "switched")
+# design clone (CONTRACTS §5d): the first day >= 0 with a record of the arm's concept (a none
+# arm: of any other arm's concept), within max_days; reasons a clone leaves its arm
+INITIATION_DAY = "initiation_day"
+CLONE_REASONS = ("started_early", "not_started", "started", "stopped", "switched")
 # periods.parquet: one row per person and period under per-protocol follow-up
 PERIOD_COLUMNS = ("person_id", "arm", "period", "start_day", "deviated")

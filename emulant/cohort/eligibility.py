@@ -135,7 +135,7 @@ def _plan_steps(pl: Planner, p: Protocol, steps_only: bool) -> list[tuple[str, s
     cbd = e.coverage_before_days
     steps.append(("coverage_before", f"one continuous coverage period from day -{cbd} to day 0",
                   f"cov_start_day IS NULL OR cov_start_day > -{cbd}"))
-    arms = " or ".join(a.initiate for a in st.arms)
+    arms = " or ".join(a.initiate for a in st.arms if a.starts)
     w = st.washout_days
     steps.append(("washout", f"no record of {arms} in days -{w} to -1 (new users)"
                   if w > 0 else "no washout (washout_days 0)", "washout_hit"))

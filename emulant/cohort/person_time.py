@@ -69,10 +69,11 @@ def _source_of(ex: Extract, p: Protocol, concept: str, key: str) -> str:
 
 
 def supply_sql(ex: Extract, p: Protocol) -> str:
-    """Per person: the dispensings of the own arm's concept in days 0..max_days, with the
-    covered-through day ``cov`` after each and ``prev_cov`` before it (§5b carry-over rule)."""
+    """Per person and arm: the dispensings of the arm's concept in days 0..max_days, with the
+    covered-through day ``cov`` after each and ``prev_cov`` before it (§5b carry-over rule).
+    Arms without a concept (``initiate: none``) supply nothing."""
     parts = []
-    for arm in p.strategies.arms:
+    for arm in p.strategies.starting_arms:
         src = _source_of(ex, p, arm.initiate, f"strategies.arms.{arm.name}.initiate")
         cols = ex.columns[src]
         cond = concept_condition(p.concept(arm.initiate), "s", cols, src)
@@ -80,26 +81,26 @@ def supply_sql(ex: Extract, p: Protocol) -> str:
             else str(DEFAULT_SUPPLY)
         gap = arm.sustain.gap_days if arm.sustain else 0
         parts.append(f"""
-            SELECT c.person_id, date_diff('day', c.time_zero, s.date) AS day,
+            SELECT c.person_id, c.arm, date_diff('day', c.time_zero, s.date) AS day,
                    CAST({supply} AS BIGINT) AS supply, {gap} AS gap
             FROM {q(src)} s JOIN {COHORT_VIEW} c ON c.person_id = s.person_id
             WHERE c.arm = {lit(arm.name)} AND {cond}
               AND s.date BETWEEN c.time_zero AND c.time_zero + {p.follow_up.max_days}""")
-    w = "PARTITION BY person_id ORDER BY day, supply ROWS UNBOUNDED PRECEDING"
+    w = "PARTITION BY person_id, arm ORDER BY day, supply ROWS UNBOUNDED PRECEDING"
     return f"""
         WITH r AS ({' UNION ALL '.join(parts)}),
         o AS (SELECT *, sum(supply) OVER ({w}) AS cum FROM r),
         c AS (SELECT *, cum + max(day - 1 - (cum - supply)) OVER ({w}) AS cov FROM o)
-        SELECT *, lag(cov) OVER (PARTITION BY person_id ORDER BY day, supply) AS prev_cov FROM c"""
+        SELECT *, lag(cov) OVER (PARTITION BY person_id, arm ORDER BY day, supply) AS prev_cov FROM c"""
 
 
 def stop_sql(ex: Extract, p: Protocol) -> str:
-    """Per person: ``stop_day`` (§5b), empty when later than ``max_days``."""
+    """Per person and arm: ``stop_day`` (§5b), empty when later than ``max_days``."""
     stop = ("coalesce(min(prev_cov + gap + 1) FILTER (WHERE day > prev_cov + gap), "
             "max(cov + gap) + 1)")
     return f"""
-        SELECT person_id, CASE WHEN {stop} <= {p.follow_up.max_days} THEN {stop} END AS stop_day
-        FROM ({supply_sql(ex, p)}) GROUP BY person_id"""
+        SELECT person_id, arm, CASE WHEN {stop} <= {p.follow_up.max_days} THEN {stop} END AS stop_day
+        FROM ({supply_sql(ex, p)}) GROUP BY person_id, arm"""
 
 
 def switch_sql(ex: Extract, p: Protocol) -> str:
@@ -130,7 +131,7 @@ def deviation_sql(ex: Extract, p: Protocol) -> str:
                     WHEN sw.switch_day <= coalesce(st.stop_day, sw.switch_day) THEN 'switched'
                     ELSE 'stopped' END AS deviation_reason
         FROM {COHORT_VIEW} c
-        LEFT JOIN ({stop_sql(ex, p)}) st ON st.person_id = c.person_id
+        LEFT JOIN ({stop_sql(ex, p)}) st ON st.person_id = c.person_id AND st.arm = c.arm
         LEFT JOIN ({switch_sql(ex, p)}) sw ON sw.person_id = c.person_id"""
 
 
