@@ -136,7 +136,9 @@ def deviation_sql(ex: Extract, p: Protocol) -> str:
 
 
 def _need_person_time(p: Protocol) -> None:
-    missing = [a.name for a in p.strategies.arms if a.sustain is None]
+    """Every starting arm needs sustain, except in design clone (where starting is the strategy)."""
+    st = p.strategies
+    missing = [a.name for a in st.starting_arms if a.sustain is None] if st.design != "clone" else []
     if missing:
         raise CohortError(f"strategies.arms.{missing[0]}: person-time needs sustain on every arm")
 
@@ -174,6 +176,11 @@ def add_deviations(extract: Extract, protocol: Protocol, cohort: pd.DataFrame) -
     ``stopped``, ``switched`` or empty. Rows keep the cohort's order.
     """
     _need_person_time(protocol)
+    if protocol.strategies.design == "clone":  # the clone cohort carries its own (§5d)
+        if C.DEVIATION_DAY not in cohort.columns:
+            raise CohortError("design clone: the deviations come with the clone cohort "
+                              "(emulant.cohort.build_cohort); this cohort has none")
+        return cohort
     if "end_day" not in cohort.columns:
         raise CohortError("per_protocol: deviations are counted within the follow-up of the "
                           "primary time-to-event outcome (end_day); the primary outcome is measured")
@@ -232,7 +239,7 @@ def _tv_sql(ex: Extract, p: Protocol, cov: Covariate, P: int) -> str:
             FROM (
                 SELECT s.person_id, date_diff('day', c.time_zero, s.date) AS day{extra},
                        c.last_period
-                FROM {q(src)} s JOIN _pt_span c ON c.person_id = s.person_id
+                FROM {q(src)} s JOIN _pt_person c ON c.person_id = s.person_id
                 WHERE {cond} AND s.date BETWEEN c.time_zero + ({a})
                                           AND c.time_zero + CAST(c.last_period * {P} + ({b}) AS INTEGER)))
         GROUP BY person_id, period"""
@@ -262,6 +269,12 @@ def build_periods(extract: Extract, protocol: Protocol, cohort: pd.DataFrame | s
                    CAST(floor(least(end_day, coalesce({C.DEVIATION_DAY}, end_day)) / {P}) AS BIGINT)
                        AS last_period
             FROM {COHORT_VIEW}""")
+        # one row per person (a clone design has several rows per person: the covariates are
+        # the person's, measured over the longest of their clones' follow-up)
+        con.execute("""
+            CREATE OR REPLACE TEMP TABLE _pt_person AS
+            SELECT person_id, any_value(time_zero) AS time_zero, max(last_period) AS last_period
+            FROM _pt_span GROUP BY person_id""")
         sel = ["g.person_id", "g.arm", "g.period", f"g.period * {P} AS start_day",
                f"CAST(coalesce(g.dev BETWEEN g.period * {P} AND g.period * {P} + {P - 1}, FALSE) "
                "AS INTEGER) AS deviated"]
@@ -273,7 +286,7 @@ def build_periods(extract: Extract, protocol: Protocol, cohort: pd.DataFrame | s
             if zero_when_none(cov.summary):
                 sel.append(f"coalesce(t{i}.v, 0) AS {q(cov.name)}")
                 continue
-            med = con.execute(f"SELECT median(v) FROM _pt_tv_{i} t JOIN _pt_span s "
+            med = con.execute(f"SELECT median(v) FROM _pt_tv_{i} t JOIN _pt_person s "
                               "ON s.person_id = t.person_id AND t.period <= s.last_period"
                               ).fetchone()[0]
             sel.append(f"coalesce(CAST(t{i}.v AS DOUBLE), {float(med) if med is not None else 0.0})"
@@ -284,7 +297,7 @@ def build_periods(extract: Extract, protocol: Protocol, cohort: pd.DataFrame | s
         target = Path(out)
         con.execute(f"""
             COPY (SELECT {', '.join(sel)} FROM ({grid}) g {' '.join(joins)}
-                  ORDER BY g.person_id, g.period)
+                  ORDER BY g.person_id, g.arm, g.period)
             TO {lit(str(target))} (FORMAT parquet)""")
         return int(con.execute(f"SELECT count(*) FROM read_parquet({lit(str(target))})")
                    .fetchone()[0])

@@ -65,8 +65,9 @@ def replicate_freq(n: int, seed: int, r: int, kind: str = "multinomial") -> np.n
 def resampling_units(cohort) -> tuple[np.ndarray | None, np.ndarray | None]:
     """What the bootstrap resamples, and each row's weight before resampling.
 
-    A cohort of person-trials (a ``trial`` column, CONTRACTS §5c) resamples persons with all
-    their trials: ``clusters`` gives each row its person's index. A ``sample_weight`` column
+    A cohort of person-trials (a ``trial`` column, CONTRACTS §5c) or of clones (a person in
+    every arm, §5d: ``person_id`` repeats) resamples persons with all their rows: ``clusters``
+    gives each row its person's index. A ``sample_weight`` column
     (the inverse share of sampled non-initiators) multiplies every replicate's frequency
     weights and is the point estimate's. Both are None for a cohort of one row per person
     (every row resampled alone, unit weights). Resampling the independent units, not the
@@ -74,7 +75,7 @@ def resampling_units(cohort) -> tuple[np.ndarray | None, np.ndarray | None]:
     their Application, §3.8).
     """
     clusters = base = None
-    if "trial" in cohort.columns:
+    if "trial" in cohort.columns or ("person_id" in cohort.columns and not cohort["person_id"].is_unique):
         clusters = np.unique(cohort["person_id"].to_numpy(), return_inverse=True)[1]
     if "sample_weight" in cohort.columns:
         base = cohort["sample_weight"].to_numpy(dtype=float)

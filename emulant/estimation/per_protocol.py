@@ -39,6 +39,7 @@ from emulant.estimation.pooled_logistic import days_at_risk, incidence_at
 from emulant.estimation.survival import aalen_johansen_intervals, step_at
 from emulant.estimation.tte import OutcomeContext, outcome_arrays
 from emulant.estimation.tte_weighting import standardized_risks, target_weights
+from emulant.models.clone_weights import clone_processes
 from emulant.models.propensity import PropensityModel, PropensityWarning
 from emulant.models.treatment_process import (
     AdherenceWeights,
@@ -210,10 +211,15 @@ def per_protocol_estimates(sample, pp: PersonPeriods, adherence: AdherenceWeight
 
 def sample_adherence(sample, pp: PersonPeriods) -> AdherenceWeights:
     """The weights over time of one sample (point estimate or replicate), refitted with its
-    frequency weights, on its baseline weights, with ``analysis.weights`` (stabilise, truncate)."""
+    frequency weights, on its baseline weights, with ``analysis.weights`` (stabilise, truncate);
+    the clone design's processes from :func:`emulant.models.clone_weights.clone_processes`."""
     ws = sample.protocol.analysis.weights
+    process = stay = carry = None
+    if sample.protocol.strategies.design == "clone":  # starting, its window's last period, sustaining
+        process, stay, carry = clone_processes(pp, sample.cohort, sample.protocol)
     return adherence_weights(pp, sample.a, sample.X, sample.freq, sample.weights,
-                             truncate=ws.truncate, stabilize=ws.stabilize)
+                             truncate=ws.truncate, stabilize=ws.stabilize, process=process,
+                             stay=stay, carry=carry)
 
 
 def adherence_summary(sample, pp: PersonPeriods, adherence: AdherenceWeights):

@@ -108,15 +108,16 @@ def person_periods(cohort: pd.DataFrame, periods: pd.DataFrame, period_days: int
     if DEVIATION_DAY not in cohort.columns:
         raise TreatmentProcessError(f"cohort.parquet: column '{DEVIATION_DAY}' is missing "
                                     "(per-protocol estimates need the deviation days)")
-    index = pd.Index(cohort[PERSON_ID])
+    keys = unit_keys(cohort, periods)
+    index = pd.MultiIndex.from_frame(cohort[keys]) if len(keys) > 1 else pd.Index(cohort[PERSON_ID])
     if not index.is_unique:
-        raise TreatmentProcessError("cohort.parquet: person_id is not unique (one row per person "
-                                    "is needed to align periods.parquet)")
-    pos = index.get_indexer(periods[PERSON_ID])
+        raise TreatmentProcessError(f"cohort.parquet: {' and '.join(keys)} do not identify a row "
+                                    "(one row per person, or per person and arm, aligns periods.parquet)")
+    pos = index.get_indexer(pd.MultiIndex.from_frame(periods[keys]) if len(keys) > 1 else periods[PERSON_ID])
     if (pos < 0).any():
         i = int(np.flatnonzero(pos < 0)[0])
-        raise TreatmentProcessError(f"periods.parquet: row {i}: person_id "
-                                    f"{periods[PERSON_ID].iloc[i]} is not in cohort.parquet")
+        unit = " and ".join(f"{k} {periods[k].iloc[i]}" for k in keys)
+        raise TreatmentProcessError(f"periods.parquet: row {i}: {unit} is not in cohort.parquet")
     period = periods[PERIOD].to_numpy(dtype=np.int64)
     order = np.lexsort((period, pos))
     pos, period = pos[order], period[order]
@@ -143,6 +144,14 @@ def person_periods(cohort: pd.DataFrame, periods: pd.DataFrame, period_days: int
                          values, vkinds)
 
 
+def unit_keys(cohort: pd.DataFrame, periods: pd.DataFrame) -> list[str]:
+    """The columns that identify a cohort row: ``person_id``, or with the design clone (one row
+    per person and arm) ``person_id`` and ``arm``."""
+    if cohort[PERSON_ID].is_unique or "arm" not in periods.columns:
+        return [PERSON_ID]
+    return [PERSON_ID, "arm"]
+
+
 def period_basis(period: np.ndarray, n_periods: int) -> np.ndarray:
     """:math:`b(k)` without a constant: :math:`k` and a restricted cubic spline (knots at the 5,
     27.5, 50, 72.5 and 95% quantiles of :math:`0..K-1`, so every replicate has the same basis),
@@ -164,37 +173,72 @@ def _fit_stay(Z: np.ndarray, stay: np.ndarray, f: np.ndarray, what: str) -> tupl
     return np.asarray(model.predict(Z), dtype=float), bool(model.converged_)
 
 
-def staying_probabilities(pp: PersonPeriods, a: np.ndarray, X: np.ndarray, freq: np.ndarray
+def _varying(Z: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """Columns of ``Z`` that vary over ``rows`` (a model of one period has no period terms)."""
+    if Z.shape[1] == 0 or not rows.any():
+        return Z[rows]
+    sub = Z[rows]
+    return sub[:, np.ptp(sub, axis=0) > 0]
+
+
+def staying_probabilities(pp: PersonPeriods, a: np.ndarray, X: np.ndarray, freq: np.ndarray,
+                          process: np.ndarray | None = None, stay: np.ndarray | None = None,
+                          carry: np.ndarray | None = None,
                           ) -> tuple[dict[str, np.ndarray], list[str]]:
     """Per period row, the probability of staying on protocol from each model of the arm:
     ``den`` (period, baseline, time-varying), ``num`` (period, baseline) and ``num_period``
     (period alone).
 
+    ``process`` (default: one process for every row on protocol) labels the rows each model is
+    fitted on, per arm: 0 for rows whose staying is not modelled (probability 1), and one pooled
+    model per further label; ``stay`` (default: not deviating in the period) is what the model
+    predicts. The clone design (:mod:`emulant.models.clone_weights`) uses separate processes for
+    starting early, starting in the window's last period and sustaining after the start;
+``carry`` (per row: -1 keeps the row's probabilities;
+    ``j >= 0`` moves them to the later row ``j`` of the same person, multiplied into its own;
+    -2 drops them) places the probability of a decision on the period where its consequence
+    falls (the clone design: starting by the window's last day keeps the clone from the next
+    period on).
+
     Rows not on protocol, rows of persons with frequency 0, and periods in which no one of the
-    arm deviates get probability 1. Returns ``(probabilities, problems)``; ``problems`` names
+    arm's process deviates get probability 1, as does a process in which no one stays (nothing
+    on protocol is left to weight). Returns ``(probabilities, problems)``; ``problems`` names
     each model that did not converge.
     """
     a_r = np.asarray(a)[pp.person]
     f_r = np.asarray(freq, dtype=float)[pp.person]
+    proc = pp.on_protocol.astype(int) if process is None else np.asarray(process, dtype=int)
+    y = (1.0 - pp.deviates) if stay is None else np.asarray(stay, dtype=float)
     out = {name: np.ones(pp.person.size) for name in ("den", "num", "num_period")}
     problems: list[str] = []
     B = period_basis(pp.period, pp.n_periods)
     for g in (1, 0):
-        fit = pp.on_protocol & (a_r == g) & (f_r > 0)
-        dev_k = np.bincount(pp.period[fit], weights=f_r[fit] * pp.deviates[fit],
-                            minlength=pp.n_periods)
-        fit &= dev_k[pp.period] > 0
-        if not fit.any():
-            continue
-        stay = 1.0 - pp.deviates[fit]
-        base = np.column_stack([B[fit], X[pp.person[fit]]])
-        for name, Z in (("num_period", B[fit]), ("num", base),
-                        ("den", np.column_stack([base, pp.L[fit]]))):
-            p, ok = _fit_stay(Z, stay, f_r[fit], name)
-            out[name][fit] = p
-            if not ok:
-                problems.append(f"treatment-process model '{name}' (arm "
-                                f"{'treated' if g else 'comparator'}) did not converge")
+        for label in sorted(set(np.unique(proc)) - {0}):
+            fit = pp.on_protocol & (a_r == g) & (f_r > 0) & (proc == label)
+            dev_k = np.bincount(pp.period[fit], weights=f_r[fit] * (1.0 - y[fit]),
+                                minlength=pp.n_periods)
+            fit &= dev_k[pp.period] > 0
+            if not fit.any() or not np.any(y[fit] * f_r[fit] > 0):
+                continue
+            base = np.column_stack([B, X[pp.person]])
+            for name, Z in (("num_period", _varying(B, fit)), ("num", _varying(base, fit)),
+                            ("den", _varying(np.column_stack([base, pp.L]), fit))):
+                if Z.shape[1] == 0:  # one period, nothing else: the arm's weighted share staying
+                    p, ok = np.full(int(fit.sum()), np.average(y[fit], weights=f_r[fit])), True
+                else:
+                    p, ok = _fit_stay(Z, y[fit], f_r[fit], name)
+                out[name][fit] = p
+                if not ok:
+                    problems.append(f"treatment-process model '{name}' (arm "
+                                    f"{'treated' if g else 'comparator'}) did not converge")
+    if carry is not None:
+        carry = np.asarray(carry)
+        src = np.flatnonzero(carry >= 0)
+        dst = carry[src]
+        for v in out.values():
+            moved = v[src].copy()
+            v[carry != -1] = 1.0
+            v[dst] *= moved
     return out, problems
 
 
@@ -228,7 +272,8 @@ def _truncated(w: np.ndarray, pp: PersonPeriods, f_r: np.ndarray, truncate) -> n
 def adherence_weights(pp: PersonPeriods, a: np.ndarray, X: np.ndarray, freq: np.ndarray,
                       baseline: Mapping[str, np.ndarray],
                       truncate: tuple[float, float] | None = None,
-                      stabilize: bool = True) -> AdherenceWeights:
+                      stabilize: bool = True, process: np.ndarray | None = None,
+                      stay: np.ndarray | None = None, carry: np.ndarray | None = None) -> AdherenceWeights:
     """The weights over time of every estimand (see the module's formula).
 
     ``baseline`` maps each estimand to its per-person baseline weight (the propensity weights
@@ -237,8 +282,9 @@ def adherence_weights(pp: PersonPeriods, a: np.ndarray, X: np.ndarray, freq: np.
     them (Hernán, Brumback & Robins 2000, Epidemiology 11:561; What If, §12.6): hence two sets,
     see :class:`AdherenceWeights`. Truncation is applied to rows on protocol, at
     frequency-weighted quantiles over them; never to ATO, whose baseline weights are bounded.
+    ``process``, ``stay`` and ``carry``: see :func:`staying_probabilities`.
     """
-    prob, problems = staying_probabilities(pp, a, X, freq)
+    prob, problems = staying_probabilities(pp, a, X, freq, process, stay, carry)
     den = np.clip(prob["den"], 1e-12, None)
     f_r = np.asarray(freq, dtype=float)[pp.person]
     sets: dict[str, dict[str, np.ndarray]] = {"num_period": {}, "num": {}}
