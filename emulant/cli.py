@@ -160,7 +160,8 @@ def cmd_check(args: argparse.Namespace) -> int:
     print(f"\nAttrition (eligibility steps in order; counts below {m} shown as <{m}):")
     print(shareable.shareable_attrition(cohort.attrition, m).to_string(index=False))
     if deviations is not None:
-        print("\nDeviations from the sustained strategies within follow-up, per arm:")
+        print("\nDeviations from the strategies within follow-up, per arm"
+              + (" (clones: one per person and arm):" if protocol.strategies.design == "clone" else ":"))
         print(shareable.shareable_deviations(deviations, m).to_string(index=False))
     from emulant.cohort.covariates import single_value_covariates
 

@@ -125,3 +125,19 @@ def test_worked_example_of_a_sustained_strategy(tmp_path):
                             build_cohort(open_extract(ex, protocol), protocol).cohort)
     p4 = cohort.set_index("person_id").loc["p4"]
     assert (p4["stop_day"], p4["deviation_day"], p4["deviation_reason"]) == (120, 120, "stopped")
+
+
+def test_worked_example_of_the_clone_design(tmp_path):
+    from emulant.cohort import build_cohort
+    from emulant.extract import open_extract
+    from emulant.protocol import load_protocol
+
+    protocol = load_protocol(ROOT / "config" / "protocols" / "clone.yaml")
+    res = build_cohort(open_extract(_worked_extract(tmp_path / "ex"), protocol), protocol)
+    assert [(r.step, r.remaining) for r in res.attrition.itertuples()][:2] == [("persons", 4), ("indexed", 1)]
+    c = res.cohort.set_index("arm")
+    assert set(res.cohort.person_id) == {"p4"}
+    assert str(pd.Timestamp(c.loc["early", "time_zero"]).date()) == "2018-01-05"
+    assert (c.loc["early", "deviation_day"], c.loc["early", "deviation_reason"]) == (91, "not_started")
+    assert pd.isna(c.loc["never", "deviation_day"]) and c.loc["never", "deviation_reason"] is None
+    assert (int(c.loc["never", "end_day"]), c.loc["never", "end_reason"]) == (1095, "max_follow_up")

@@ -125,10 +125,10 @@ def shareable_positivity(pos: Mapping[str, Any], min_cell: int) -> dict[str, Any
 
 
 def shareable_deviations(df: pd.DataFrame, min_cell: int) -> pd.DataFrame:
-    """Deviation counts per arm (``persons = stopped + switched + on_protocol_throughout``) under
+    """Deviation counts per arm (``persons`` = the reasons' counts + ``on_protocol_throughout``) under
     the rule: each row's cells with the row total shown, and the arms' persons, which add up to the
     shown cohort size."""
-    parts = [c for c in ("stopped", "switched", "on_protocol_throughout") if c in df.columns]
+    parts = [c for c in df.columns if c not in ("arm", "persons")]  # reasons, then on protocol
     out = df.copy().astype({c: object for c in (*parts, "persons")})
     persons = [float(x) for x in df["persons"]]
     hidden_n = dc.suppress_cells(persons, min_cell, True)

@@ -43,7 +43,6 @@ from emulant.extract import Extract
 from emulant.progress import Progress
 from emulant.protocol import Protocol
 
-REASONS = C.CLONE_REASONS
 
 
 def _records(ex: Extract, p: Protocol, concepts: tuple[str, ...], key: str, select: str) -> str:
@@ -241,15 +240,3 @@ def build_clone_cohort(extract: Extract, protocol: Protocol, steps_only: bool = 
     except duckdb.Error as exc:
         raise CohortError(f"building the clone cohort of {extract.path} failed in DuckDB: "
                           f"{str(exc).splitlines()[0]}") from None
-
-
-def clone_flow(cohort: pd.DataFrame, protocol: Protocol) -> pd.DataFrame:
-    """Per arm: clones, and how many left it within follow-up for each reason (CONTRACTS §5d)."""
-    rows = []
-    for arm in protocol.strategies.arm_names:
-        r = cohort.loc[cohort["arm"] == arm, C.DEVIATION_REASON]
-        row = {"arm": arm, "clones": int(len(r))}
-        row.update({reason: int((r == reason).sum()) for reason in REASONS})
-        row["on_protocol_throughout"] = int(r.isna().sum())
-        rows.append(row)
-    return pd.DataFrame(rows)

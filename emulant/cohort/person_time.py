@@ -200,13 +200,17 @@ def add_deviations(extract: Extract, protocol: Protocol, cohort: pd.DataFrame) -
 
 
 def deviation_counts(cohort: pd.DataFrame, protocol: Protocol) -> pd.DataFrame:
-    """Per arm: persons, how many stopped and switched within follow-up, and how many stayed."""
+    """Per arm: persons (clones, in design clone), how many left within follow-up for each
+    reason (§5b: stopped, switched; §5d adds started_early, not_started, started), and how many
+    stayed on protocol throughout."""
+    reasons = C.CLONE_REASONS if protocol.strategies.design == "clone" else C.DEVIATION_REASONS
     rows = []
     for arm in protocol.strategies.arm_names:
         r = cohort.loc[cohort["arm"] == arm, C.DEVIATION_REASON]
-        n_stop, n_switch = int((r == "stopped").sum()), int((r == "switched").sum())
-        rows.append({"arm": arm, "persons": int(len(r)), "stopped": n_stop, "switched": n_switch,
-                     "on_protocol_throughout": int(len(r)) - n_stop - n_switch})
+        row = {"arm": arm, "persons": int(len(r))}
+        row.update({x: int((r == x).sum()) for x in reasons})
+        row["on_protocol_throughout"] = int(len(r)) - sum(row[x] for x in reasons)
+        rows.append(row)
     return pd.DataFrame(rows)
 
 

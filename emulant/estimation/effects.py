@@ -98,11 +98,12 @@ def estimate_sample(sample: AnalysisSample, progress: Progress | None = None,
         weighted = {"ipw", "standardization"} & set(sample.protocol.analysis.methods)
         adherence = (sample_adherence(sample, person_time) if weighted
                      else AdherenceWeights({}, {}, ()))
+    itt = "intention_to_treat" in sample.protocol.contrasts  # design clone: per protocol only
     for outcome in outcomes.all():  # primary, secondary, negative controls
         if isinstance(outcome, MeasuredOutcome):
-            rows += measured_outcome_rows(sample, outcome)
+            rows += measured_outcome_rows(sample, outcome) if itt else []
         else:
-            r, c = time_to_event_estimates(sample, outcome)
+            r, c = time_to_event_estimates(sample, outcome) if itt else ([], [])
             if adherence is not None:
                 r2, c2, fit_problems = per_protocol_estimates(sample, person_time, adherence, outcome)
                 if "gformula" in sample.protocol.analysis.methods:

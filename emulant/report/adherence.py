@@ -148,7 +148,8 @@ def section(raw: dict[str, Any], protocol: Protocol) -> dict | None:
     adh, est = raw.get("adherence"), raw.get("estimates")
     out: dict[str, Any] = {"deviations": deviations(raw.get("cohort"), protocol),
                            "weights": [], "weight_warnings": [], "on_protocol": None,
-                           "side_by_side": side_by_side(est, protocol) if est is not None else []}
+                           "side_by_side": side_by_side(est, protocol)
+                           if est is not None and ITT in protocol.contrasts else []}
     if adh is not None and len(adh):
         out["on_protocol"] = on_protocol(adh, protocol)
         out["weights"], out["weight_warnings"] = weight_rows(adh, protocol)

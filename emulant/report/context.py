@@ -12,7 +12,7 @@ from typing import Any
 
 from emulant.protocol import Protocol, outcome_name
 from emulant.protocol.as_input import as_input_yaml
-from emulant.report import adherence, decision, figures, fmt, narrative, results, tables, target
+from emulant.report import adherence, clones, decision, figures, fmt, narrative, results, tables, target
 from emulant.report import disclosure as dc
 from emulant.report import gformula as gformula_part
 from emulant.report.compact import compact_tables
@@ -198,6 +198,11 @@ def build_context(results_dir: str | Path, protocol: Protocol, manifest: dict | 
         ctx["assumptions"] += gformula_part.assumptions(p, ctx["pp"].get("gformula"))
         ctx["warnings"] += [{"section": "per-protocol", "text": w}
                             for w in (ctx["pp"].get("gformula") or {}).get("warnings", [])]
+        ctx["pp"]["clones"] = clones.section(raw, p, ctx["pp"])
+        if ctx["pp"]["clones"] is not None:
+            ctx["assumptions"] += clones.assumptions(p, raw.get("cohort"), ctx["pp"])
+            ctx["warnings"] += [{"section": "per-protocol", "text": w}
+                                for w in ctx["pp"]["clones"]["warnings"]]
     ctx["manifest"] = manifest_context(manifest) if manifest else None
     ctx["protocol_yaml"] = as_input_yaml(p)
     ctx["codelists"] = codelists(p)

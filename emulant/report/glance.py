@@ -120,6 +120,9 @@ def population(cohort: pd.DataFrame | None, positivity: dict | None, protocol: P
         n = {a: float(v) for a, v in ((positivity or {}).get("n") or {}).items()}
     if not n:
         return {"total": "", "arms": []}
+    if protocol.strategies.design == "clone" and cohort is not None and "person_id" in cohort:
+        return {"total": dc.show_count(float(cohort["person_id"].nunique()), m), "clones": True,
+                "arms": [{"name": a, "n": dc.show_count(n.get(a), m), "treated": False} for a in arms]}
     return {"total": dc.show_count(sum(n.values()), m),
             "arms": [{"name": a, "n": dc.show_count(n.get(a), m),
                       "treated": a == protocol.strategies.treated} for a in arms if a in n]}

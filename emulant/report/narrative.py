@@ -9,6 +9,7 @@ from typing import Any
 import pandas as pd
 
 from emulant.protocol import MeasuredOutcome, Protocol
+from emulant.report import clones
 from emulant.report import disclosure as dc
 from emulant.report import fmt, trials
 from emulant.report.glance import CENSORING_GAP_PP, censoring_gap
@@ -57,6 +58,9 @@ def _per_protocol_text(p: Protocol) -> str:
         + (f", switches on a record of {', '.join(a.sustain.switch)}" if a.sustain.switch else "")
         for a in p.strategies.arms if a.sustain is not None)
     tv = ", ".join(c.name for c in p.time_varying) or "none"
+    if clones.is_clone(p):
+        rules = "starting before the window, not starting by its end, starting in a none arm" + \
+            (f"; {rules}" if rules else "")
     return (f" Per protocol: follow-up ends on the day a person deviates ({rules}); the "
             "unadjusted estimate is that artificially censored analysis; ipw and "
             "standardization weight each period by the inverse probability of having stayed on "
@@ -78,7 +82,7 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
     if attrition:
         flow = (f" {attrition[-1]['remaining']} of {attrition[0]['remaining']} persons in the "
                 f"extract were eligible ({len(attrition)} steps, see the attrition table).")
-    arms = "; ".join(f"{arm.name}: initiate {_concept(p, arm.initiate)}" for arm in s.arms)
+    arms = "; ".join(clones.arm_words(p, arm, _concept) for arm in s.arms)
     did = {
         "eligibility": (f"Time zero between {e.entry_start} and {e.entry_end}. {age}Continuous coverage "
                         f"for {e.coverage_before_days} days before time zero. "
@@ -126,6 +130,8 @@ def emulation_rows(p: Protocol, attrition: list[dict] | None, bootstrap: dict | 
             did["eligibility"] = did["eligibility"].replace(
                 flow, f" {attrition[-1]['remaining']} of {attrition[0]['remaining']} "
                 "person-trials were eligible and kept (see the attrition table).")
+    if clones.is_clone(p):
+        did.update(clones.emulation(p, _concept))
     if design:
         did["analysis"] += " This is the outcome-blind design report: no outcome was analysed."
     elif bootstrap and bootstrap.get("requested") in ("0", 0):

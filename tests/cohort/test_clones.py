@@ -17,7 +17,7 @@ import pytest
 from tiny_extract import write_extract, write_protocol
 
 from emulant.cohort import CohortError, build_cohort
-from emulant.cohort.clones import clone_flow
+from emulant.cohort.person_time import deviation_counts
 from emulant.extract import open_extract
 from emulant.protocol import load_protocol
 
@@ -138,10 +138,10 @@ def test_every_clone_deviation_by_hand(built):
     assert got == EXPECTED
 
 
-def test_clone_flow_counts_reasons(built):
+def test_deviation_counts_of_clones_by_reason(built):
     p, res = built
-    flow = clone_flow(res.cohort, p).set_index("arm")
-    assert flow.loc["early"].to_dict() == {"clones": 10, "started_early": 1, "not_started": 4, "started": 0,
+    flow = deviation_counts(res.cohort, p).set_index("arm")
+    assert flow.loc["early"].to_dict() == {"persons": 10, "started_early": 1, "not_started": 4, "started": 0,
                                            "stopped": 1, "switched": 2, "on_protocol_throughout": 2}
     assert flow.loc["never", "started"] == 6 and flow.loc["never", "on_protocol_throughout"] == 4
 
