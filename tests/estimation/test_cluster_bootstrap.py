@@ -72,4 +72,6 @@ def test_unit_freq_gives_each_person_one_draw_and_keeps_sample_weights():
     df = pd.DataFrame({"person_id": [5, 5, 9], "trial": [0, 1, 0], "sample_weight": [1.0, 2.0, 2.0]})
     c, b = resampling_units(df)
     assert c.tolist() == [0, 0, 1] and b.tolist() == [1.0, 2.0, 2.0]
-    assert resampling_units(df.drop(columns=["trial", "sample_weight"])) == (None, None)
+    clones = df.drop(columns=["trial", "sample_weight"])  # a person in every arm (design clone)
+    assert resampling_units(clones)[0].tolist() == [0, 0, 1] and resampling_units(clones)[1] is None
+    assert resampling_units(clones.drop_duplicates("person_id")) == (None, None)
