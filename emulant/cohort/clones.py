@@ -36,13 +36,25 @@ import duckdb
 import pandas as pd
 
 from emulant import columns as C
-from emulant.cohort.covariates import CohortError, Planner, concept_condition, lit, make_aggregates, q
-from emulant.cohort.eligibility import CohortResult, _cohort_frame, _make_coverage, _plan_steps, _select_all
+from emulant.cohort.covariates import (
+    CohortError,
+    Planner,
+    concept_condition,
+    lit,
+    make_aggregates,
+    q,
+)
+from emulant.cohort.eligibility import (
+    CohortResult,
+    _cohort_frame,
+    _make_coverage,
+    _plan_steps,
+    _select_all,
+)
 from emulant.cohort.person_time import COHORT_VIEW, _register, _run, _source_of, stop_sql
 from emulant.extract import Extract
 from emulant.progress import Progress
 from emulant.protocol import Protocol
-
 
 
 def _records(ex: Extract, p: Protocol, concepts: tuple[str, ...], key: str, select: str) -> str:
@@ -113,7 +125,7 @@ def clone_deviation_sql(ex: Extract, p: Protocol) -> str:
     """Per clone (person and arm of ``_pt_cohort``): ``initiation_day, stop_day, switch_day,
     deviation_day, deviation_reason`` (CONTRACTS §5d; see the module's rules)."""
     st, mx = p.strategies, p.follow_up.max_days
-    within = "s.date BETWEEN c.time_zero AND c.time_zero + {mx}".format(mx=mx)
+    within = f"s.date BETWEEN c.time_zero AND c.time_zero + {mx}"
     starts = []
     for arm in st.arms:
         own = (arm.initiate,) if arm.starts else tuple(x for x in st.initiating_concepts)

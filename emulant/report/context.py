@@ -12,7 +12,17 @@ from typing import Any
 
 from emulant.protocol import Protocol, outcome_name
 from emulant.protocol.as_input import as_input_yaml
-from emulant.report import adherence, clones, decision, figures, fmt, narrative, results, tables, target
+from emulant.report import (
+    adherence,
+    clones,
+    decision,
+    figures,
+    fmt,
+    narrative,
+    results,
+    tables,
+    target,
+)
 from emulant.report import disclosure as dc
 from emulant.report import gformula as gformula_part
 from emulant.report.compact import compact_tables

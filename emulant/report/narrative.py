@@ -9,9 +9,8 @@ from typing import Any
 import pandas as pd
 
 from emulant.protocol import MeasuredOutcome, Protocol
-from emulant.report import clones
+from emulant.report import clones, fmt, trials
 from emulant.report import disclosure as dc
-from emulant.report import fmt, trials
 from emulant.report.glance import CENSORING_GAP_PP, censoring_gap
 from emulant.wording import censoring_assumption, methods_note, variance_note
 

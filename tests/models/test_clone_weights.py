@@ -112,8 +112,8 @@ def test_last_period_probability_is_of_starting_and_moves_to_the_deviation():
 
 
 def simulate(n, seed, b):
-    """Persons followed from an index event. A marker L (measured at each period's start) drives
-    starting and the outcome; treatment lowers it and the outcome's hazard from the period after
+    """Persons followed from an index event, seen at a visit on each period's first day. A marker
+    L (measured at the visit) drives starting there and the outcome; treatment lowers it and the outcome's hazard from the period after
     the start. Returns the observed clones, the marker, the truth of both strategies by
     simulating the same persons and random numbers under each (§5d's reading of the window: no
     start before it, natural starts inside it, whoever has not started by its last period starts
@@ -121,7 +121,8 @@ def simulate(n, seed, b):
     rng = np.random.default_rng(seed)
     x = rng.normal(size=n)
     L0, noise = 0.5 * x + rng.normal(0, 0.8, n), rng.normal(0, 0.5, (n, K))
-    u_start, d_start = rng.random((n, K)), rng.integers(0, P, (n, K))
+    u_start = rng.random((n, K))
+    rng.integers(0, P, (n, K))  # drawn and unused: keeps the stream the figures below come from
     u_out, d_out = rng.random((n, K)), rng.integers(0, P, (n, K))
     expit = lambda v: 1 / (1 + np.exp(-v))  # noqa: E731
     Kb = b // P
@@ -130,12 +131,12 @@ def simulate(n, seed, b):
         L, s = L0.copy(), np.full(n, np.nan)
         end, alive, marker = np.full(n, float(HORIZON)), np.ones(n, bool), np.zeros((n, K))
         for k in range(K):
-            on = ~np.isnan(s) & (s < k * P)
+            on = ~np.isnan(s) & (s < k * P)  # started at an earlier visit
             if k:
                 L = 0.8 * L + np.where(on, -0.3, 0.25) + noise[:, k]
             marker[:, k] = L
             want = np.isnan(s) & (u_start[:, k] < expit(-2.6 + 0.8 * L))
-            day = k * P + d_start[:, k]
+            day = np.full(n, k * P)  # a start at the period's visit, on its first day
             if strategy == "never":
                 want[:] = False
             elif strategy == "window" and k == Kb:
@@ -144,7 +145,8 @@ def simulate(n, seed, b):
             elif strategy == "window" and k > Kb:
                 want[:] = False
             s = np.where(want & alive, day, s)
-            ev = alive & (u_out[:, k] < expit(-3.4 + 0.7 * L + 0.3 * x - 0.3 * on))
+            on_now = ~np.isnan(s) & (s <= k * P)  # treatment acts from the visit of its start
+            ev = alive & (u_out[:, k] < expit(-3.4 + 0.7 * L + 0.3 * x - 0.3 * on_now))
             end[ev] = k * P + d_out[ev, k]
             alive &= ~ev
         return end, s, marker
@@ -186,12 +188,12 @@ def test_clone_estimates_recover_the_truth_where_the_naive_comparison_does_not(b
     # the naive comparison: classify persons by whether they started in the window, follow
     # everyone from the index (immortal time: a starter had to survive until the start)
     naive = event[started_in_window].mean() - event[~started_in_window].mean()
-    # truth -0.277 (b 89) and -0.267 (b 75); naive -0.231 and -0.215 (persons who start have a
-    # higher marker: confounding by indication outweighs the immortal time here); ipw -0.272 and
-    # -0.263, standardization -0.280 and -0.267. Over eight seeds and windows ipw erred by
-    # -0.026 .. +0.023 (median +0.005), standardization by -0.032 .. +0.011: sampling error of
-    # the never arm, whose clones rarely stay untreated for a year (large weights)
+    # here (seeds 21, 22): ipw errs by 0.000 and +0.005, standardization by -0.008 and +0.004.
+    # Over eight seeds and windows ipw erred by -0.030 .. +0.017 (median -0.001),
+    # standardization by -0.037 .. +0.009; another eight seeds gave a median of +0.02 for ipw:
+    # sampling error of the never arm, whose clones rarely stay untreated for a year (large
+    # weights). Persons who start have a higher marker, so the naive comparisons miss.
     assert abs(naive - true_rd) > 0.04
-    assert abs(rd["ipw"] - true_rd) < 0.015, (rd.to_dict(), true_rd)
-    assert abs(rd["standardization"] - true_rd) < 0.015, (rd.to_dict(), true_rd)
+    assert abs(rd["ipw"] - true_rd) < 0.02, (rd.to_dict(), true_rd)
+    assert abs(rd["standardization"] - true_rd) < 0.02, (rd.to_dict(), true_rd)
     assert abs(rd["unadjusted"] - true_rd) > 0.04  # the naive per-protocol analysis (no weights)
