@@ -160,7 +160,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     print(f"\nAttrition (eligibility steps in order; counts below {m} shown as <{m}):")
     print(shareable.shareable_attrition(cohort.attrition, m).to_string(index=False))
     if deviations is not None:
-        print("\nDeviations from the strategies within follow-up, per arm (design clone: per clone):")
+        print("\nDeviations from the strategies within follow-up (design clone: clones), per arm:")
         print(shareable.shareable_deviations(deviations, m).to_string(index=False))
     from emulant.cohort.covariates import single_value_covariates
 
