@@ -23,29 +23,33 @@ The weights follow the periods of CONTRACTS §5a (period :math:`k` holds days
 :math:`kP .. (k+1)P-1`); the daily hazard model counts days as
 :mod:`emulant.estimation.pooled_logistic` does (days :math:`kP+1 .. (k+1)P`), each day-period
 taking the weight of the §5a period of its first day.
-Hazard ratios are not estimated per protocol (a weighted Cox model with weights varying over
-time is not built here).
+With ``analysis.hazard_ratio``, Cox hazard ratios of the artificially censored data: unweighted
+(``unadjusted``) and, for ``ipw``, weighted per period on the counting-process intervals
+(:func:`ipw_hazard_ratio`); cause-specific with competing events, and with the caution of
+:mod:`emulant.estimation.cox` (the hazard ratio averages a ratio that may change over follow-up).
 """
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 
-from emulant.columns import DEVIATION_DAY
+from emulant.columns import DEVIATION_DAY, period_weight
+from emulant.estimation.cox import cox_fit, monotone_likelihood
 from emulant.estimation.events import COMPETING, SurvivalError
-from emulant.estimation.pooled_logistic import days_at_risk, incidence_at
+from emulant.estimation.pooled_logistic import (
+    PooledLogistic,
+    days_at_risk,
+    gformula_incidence,
+    time_basis,
+)
 from emulant.estimation.survival import aalen_johansen_intervals, step_at
-from emulant.estimation.tte import OutcomeContext, outcome_arrays
+from emulant.estimation.tte import OutcomeContext, _row, outcome_arrays
 from emulant.estimation.tte_weighting import standardized_risks, target_weights
 from emulant.models.clone_weights import clone_processes
-from emulant.models.propensity import PropensityModel, PropensityWarning
 from emulant.models.treatment_process import (
     AdherenceWeights,
     PersonPeriods,
     adherence_weights,
-    period_basis,
     weight_summary,
 )
 
@@ -60,18 +64,6 @@ def per_protocol_arrays(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
     dev = np.asarray(cohort[DEVIATION_DAY], dtype=float)
     cut = ~np.isnan(dev) & (dev < time)
     return np.where(cut, dev, time), np.where(cut, 0, status)
-
-
-def _row_of(pp: PersonPeriods, k: np.ndarray, person: np.ndarray) -> np.ndarray:
-    """Index of person's period row ``k`` in ``pp`` (the last one when ``k`` is past it)."""
-    first = np.flatnonzero(pp.first_row)
-    counts = np.diff(np.r_[first, pp.person.size])
-    slot = np.full(int(pp.person.max()) + 1 if pp.person.size else 0, -1)
-    slot[pp.person[first]] = np.arange(first.size)
-    j = slot[person]
-    if (j < 0).any():
-        raise SurvivalError(f"periods.parquet: cohort row {int(person[j < 0][0])} has no period")
-    return first[j] + np.minimum(k, counts[j] - 1)
 
 
 def intervals(pp: PersonPeriods, time: np.ndarray, status: np.ndarray):
@@ -108,75 +100,62 @@ def ipw_curves(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndarray):
     return curves, risk
 
 
-def _long(days, event, P: int, K: int):
-    """Person-periods of a daily hazard model: ``(person, k, at_risk_days, event)`` per row.
-
-    A person at risk on days :math:`1..d` is at risk :math:`\\min(P, d - kP)` days of period
-    :math:`k` (days :math:`kP+1 .. (k+1)P`, the convention of
-    :mod:`emulant.estimation.pooled_logistic`); the event falls on day :math:`d`.
-    """
-    d = np.minimum(np.asarray(days, dtype=float), K * P)
-    n_rows = np.ceil(d / P).astype(int)
-    person = np.repeat(np.arange(d.size), n_rows)
-    k = np.arange(person.size) - np.repeat(np.cumsum(n_rows) - n_rows, n_rows)
-    m = np.clip(d[person] - k * P, 0, P)
-    ev = np.asarray(event, dtype=bool)[person] & (k == n_rows[person] - 1)
-    return person, k, m, ev
-
-
-def _hazard(Z, y, f, what: str, problems: list[str]):
-    with warnings.catch_warnings():  # separation: the ridge refit of PropensityModel handles it
-        warnings.simplefilter("ignore", PropensityWarning)
-        model = PropensityModel().fit(Z, y.astype(float), sample_weight=f)
-    if not model.converged_:
-        problems.append(f"per-protocol {what} hazard model did not converge")
-    return model
+def ipw_hazard_ratio(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndarray, estimand: str):
+    """The ``ipw`` hazard ratio row: a Cox model of the arm on the counting-process intervals of
+    :func:`intervals` (entry ``start_day - 1``), each weighted by its period's :math:`W_k` and the
+    person's frequency (a marginal structural Cox model with weights over time; Hernán, Brumback
+    & Robins 2000, Epidemiology 11:561). Competing events are censored: cause-specific."""
+    row, entry, exit_, st = intervals(pp, c.time, c.status)
+    person = pp.person[row]
+    event = (st == 1).astype(int)
+    why = monotone_likelihood(c.time, c.status == 1, c.a, c.f)
+    log_hr = (float(cox_fit(exit_, event, c.a[person], w_rows[row], c.f[person], entry=entry)[0])
+              if not why else float("nan"))
+    return _row(c.outcome, estimand, "ipw", "hazard_ratio", None, c.arms[1], c.arms[0],
+                np.exp(log_hr), c.f.sum(), float(c.f @ (c.status == 1)),
+                note=f"not estimable: {why}" if why else "", contrast=CONTRAST)
 
 
-def _daily_model(c: OutcomeContext, pp: PersonPeriods, w_rows, name: str, K: int, Bk,
-                 problems: list[str]):
-    """A weighted pooled logistic model of the daily hazard: each person-period is a binomial
-    of its days at risk, written as two weighted Bernoulli rows (event days, other days)."""
-    days, event = days_at_risk(np.minimum(c.time, c.max_days), c.status, name)
-    person, k, m, ev = _long(days, event, c.P, K)
-    w = c.f[person] * w_rows[_row_of(pp, np.minimum(k, pp.n_periods - 1), person)]
-    a = c.a[person].astype(float)
-    Z = np.column_stack([a, Bk[k], a[:, None] * Bk[k], c.X[person]])
-    y = np.r_[np.ones(int(ev.sum())), np.zeros(person.size)]
-    f = np.r_[w[ev], w * (m - ev)]
-    keep = f > 0
-    return _hazard(np.vstack([Z[ev], Z])[keep], y[keep], f[keep], name, problems)
-
-
-def _predict(model, B: np.ndarray, X: np.ndarray, g: int) -> np.ndarray:
-    """Daily :math:`h_i(k)` for everyone had they been in arm ``g`` (n x K)."""
-    q = B.shape[1]
-    coef = model.coef_
-    time_part = g * coef[0] + B @ coef[1:1 + q] + g * (B @ coef[1 + q:1 + 2 * q])
-    eta = model.intercept_ + (X @ coef[1 + 2 * q:])[:, None] + time_part[None, :]
-    return 1.0 / (1.0 + np.exp(-np.clip(eta, -700, 700)))
+def period_weights(pp: PersonPeriods, w_rows: np.ndarray, n: int, K: int) -> np.ndarray:
+    """Person :math:`i`'s weight in period :math:`k` (n x K): the weight of their period row
+    :math:`k`, the last row's weight carried on past their last row."""
+    first = np.flatnonzero(pp.first_row)
+    counts = np.diff(np.r_[first, pp.person.size])
+    slot = np.full(n, -1)
+    slot[pp.person[first]] = np.arange(first.size)
+    if (slot < 0).any():
+        raise SurvivalError(f"periods.parquet: cohort row {int(np.flatnonzero(slot < 0)[0])} "
+                            "has no period")
+    last = (counts[slot] - 1)[:, None]
+    return w_rows[first[slot][:, None] + np.minimum(np.arange(K)[None, :], last)]
 
 
 def standardized_incidence(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndarray,
-                           problems: list[str]) -> dict[int, np.ndarray]:
+                           problems: list[str], starts: dict | None = None,
+                           fitted: dict | None = None, key: str = "") -> dict[int, np.ndarray]:
     """Each person's cumulative incidence under each arm on the grid, then at the horizons.
 
-    Daily hazards constant within each period (:func:`emulant.estimation.pooled_logistic.
-    incidence_at`); a day-period's weight is that of the person's period of CONTRACTS §5a
-    holding its first day.
+    The daily hazards of :class:`emulant.estimation.pooled_logistic.PooledLogistic` (arm, a
+    period spline and its interaction with the arm, the baseline covariates), each day of
+    period :math:`k` weighted by the person's :math:`W_k` times their frequency; then
+    :func:`emulant.estimation.pooled_logistic.gformula_incidence`. Each model's Newton's method
+    starts from ``starts[key + name]`` when given (a replicate starts from the point estimate's
+    coefficients) and records its coefficients in ``fitted[key + name]``.
     """
     K = max(1, -(-int(c.max_days) // c.P))
-    Bk = period_basis(np.arange(K), K)
-    models = {"outcome": _daily_model(c, pp, w_rows, "outcome", K, Bk, problems)}
-    if c.competing and np.any(c.status == COMPETING):
-        models["competing"] = _daily_model(c, pp, w_rows, "competing", K, Bk, problems)
-    days = np.concatenate([c.grid, np.asarray(c.horizons, dtype=float)])
-    inc = {}
-    for g in (0, 1):
-        h = _predict(models["outcome"], Bk, c.X, g)
-        hc = _predict(models["competing"], Bk, c.X, g) if "competing" in models else None
-        inc[g] = incidence_at(h, hc, days, c.P)
-    return inc
+    W = c.f[:, None] * period_weights(pp, w_rows, c.a.size, K)
+    t = np.minimum(c.time, c.max_days)
+    kinds = ["outcome"] + (["competing"] if c.competing and np.any(c.status == COMPETING) else [])
+    models = {}
+    for name in kinds:
+        days, event = days_at_risk(t, c.status, name)
+        models[name] = PooledLogistic().fit(time_basis(K), c.X, c.a, days, event, W, c.P,
+                                            start=(starts or {}).get(key + name))
+        if fitted is not None:
+            fitted[key + name] = models[name].coef_
+        if not models[name].converged_:
+            problems.append(f"per-protocol {name} hazard model did not converge")
+    return gformula_incidence(models, c.X, np.concatenate([c.grid, np.asarray(c.horizons, float)]))
 
 
 def per_protocol_estimates(sample, pp: PersonPeriods, adherence: AdherenceWeights,
@@ -193,15 +172,22 @@ def per_protocol_estimates(sample, pp: PersonPeriods, adherence: AdherenceWeight
     curves, risk = c.aj_curves(c.f)
     rows += c.contrast_rows(None, "unadjusted", risk)
     curve_rows += c.curve_rows(None, "unadjusted", curves)
+    hazard_ratio = c.protocol.analysis.hazard_ratio
+    if hazard_ratio:
+        rows.append(c.hazard_ratio_row(None, "unadjusted", None))
     for est in c.protocol.estimands:
         w_rows = np.asarray(adherence.weights.get(est, ()), dtype=float)  # empty without ipw, standardization
         if "ipw" in methods:
             curves, risk = ipw_curves(c, pp, w_rows)
             rows += c.contrast_rows(est, "ipw", risk)
             curve_rows += c.curve_rows(est, "ipw", curves)
+            if hazard_ratio:
+                rows.append(ipw_hazard_ratio(c, pp, w_rows, est))
         if "standardization" in methods:
             w_cond = np.asarray(adherence.conditional[est], dtype=float)
-            inc = standardized_incidence(c, pp, w_cond, problems)
+            inc = standardized_incidence(c, pp, w_cond, problems, sample.starts.get(outcome),
+                                         sample.fitted.setdefault(outcome, {}),
+                                         f"{CONTRAST}_{est}_")
             v = target_weights(est, c.a, c.e, c.f)
             curves, risk = standardized_risks(inc, v, c.grid.size, c.horizons)
             rows += c.contrast_rows(est, "standardization", risk)
@@ -220,6 +206,22 @@ def sample_adherence(sample, pp: PersonPeriods) -> AdherenceWeights:
     return adherence_weights(pp, sample.a, sample.X, sample.freq, sample.weights,
                              truncate=ws.truncate, stabilize=ws.stabilize, process=process,
                              stay=stay, carry=carry)
+
+
+WEIGHTED_METHODS = {"ipw": "weights", "standardization": "conditional"}  # AdherenceWeights field
+
+
+def weighted_periods(periods, pp: PersonPeriods, adherence: AdherenceWeights, methods):
+    """``periods.parquet``: the person-periods (sorted by the cohort's person order and period)
+    with ``weight_<method>_<ESTIMAND>``, the weights over time each of ``methods`` used
+    (``ipw``: stabilised by the period alone; ``standardization``: by period and baseline
+    covariates), frequency not multiplied in."""
+    out = periods.iloc[pp.source_row].reset_index(drop=True)
+    for method, field in WEIGHTED_METHODS.items():
+        if method in methods:
+            for est, w in getattr(adherence, field).items():
+                out[period_weight(method, est)] = np.asarray(w, dtype=float)
+    return out
 
 
 def adherence_summary(sample, pp: PersonPeriods, adherence: AdherenceWeights):

@@ -131,7 +131,7 @@ class _Data:
             Zc, ac = Z[sl], a[sl]
             # f * days at risk in each period (0 after the last one)
             fm = np.clip(self.days[sl, None] - self.starts[None, :], 0, self.P)
-            fm *= self.f[sl, None]
+            fm *= self.f[sl] if self.f.ndim == 2 else self.f[sl, None]
             lin = np.clip(Zc @ beta, -700, 300) if p else np.zeros(ac.size)
             E = expc[self.arm[sl]]  # exp(eta) = exp(x'beta) * exp(b(k)'(gamma + a alpha))
             E *= np.exp(lin)[:, None]
@@ -170,6 +170,10 @@ class PooledLogistic:
     arm's main effect, the rest the arm-by-time interaction). Fitted by Newton–Raphson on the
     implicit person-period table, each cell a binomial of the days at risk in it.
 
+    The weights are one per person (``freq`` of length n), or one per person and period
+    (n x K, e.g. the per-protocol weights over time: each day of period :math:`k` of person
+    :math:`i` then counts :math:`w_{ik}` times).
+
     Attributes
     ----------
     coef_ : (gamma, alpha, beta) stacked; period_days_; n_iter_, converged_
@@ -190,7 +194,8 @@ class PooledLogistic:
         """Fit on persons at risk on days ``1..days`` with ``event`` on the last of them.
 
         ``basis`` has one row per period of ``period_days`` days; days past the last period
-        are not at risk. ``start``: coefficients to start Newton's method from (a bootstrap
+        are not at risk. ``freq``: frequency weights per person (n) or per person and period
+        (n x K). ``start``: coefficients to start Newton's method from (a bootstrap
         replicate starts from the point estimate's ``coef_``, a few iterations from its own
         optimum); by default the constant hazard of the crude daily rate.
         """
@@ -199,19 +204,26 @@ class PooledLogistic:
         X = np.asarray(X, dtype=float).reshape(len(a), -1)
         a = np.asarray(a, dtype=float)
         f = np.ones(a.size) if freq is None else np.asarray(freq, dtype=float)
+        if f.shape not in ((a.size,), (a.size, K)):
+            raise SurvivalError(f"freq has shape {f.shape}: expected ({a.size},) or ({a.size}, {K})")
         days = np.minimum(np.floor(np.asarray(days, dtype=float)), K * period_days)
         self.basis_, self.period_days_ = B, int(period_days)
-        self.x_mean_ = np.average(X, axis=0, weights=f) if X.shape[1] else np.zeros(0)
+        # per person: the weight (of period 0 with weights per period; only a person with
+        # frequency 0 has weight 0 there) that decides who is kept and centres the columns
+        f_person = f if f.ndim == 1 else f[:, 0]
+        self.x_mean_ = (np.average(X, axis=0, weights=f_person) if X.shape[1] and f_person.sum() > 0
+                        else np.zeros(X.shape[1]))
         sd = X.std(axis=0) if X.shape[1] else np.zeros(0)
         self.x_scale_ = np.where(sd > 0, sd, 1.0)
-        keep = (f > 0) & (days >= 1)  # persons with at least one day at risk
+        keep = (f_person > 0) & (days >= 1)  # persons with at least one weighted day at risk
         Z = ((X - self.x_mean_) / self.x_scale_)[keep]
         a, f, days = a[keep], f[keep], days[keep]
         ev = np.asarray(event, dtype=bool)[keep]
         last = (np.ceil(days / period_days) - 1).astype(int)  # the period of the last day
-        y_rows, y_k, y_f = np.flatnonzero(ev), last[ev], f[ev]
+        y_rows, y_k = np.flatnonzero(ev), last[ev]
+        y_f = f[y_rows, y_k] if f.ndim == 2 else f[ev]
         data = _Data(B, Z, a, f, days, period_days, y_rows, y_k, y_f)
-        rate = y_f.sum() / max(float(f @ days), 1e-300)
+        rate = y_f.sum() / max(float(f_person[keep] @ days), 1e-300)  # the start's crude rate
         params = np.zeros(2 * q + Z.shape[1])
         if start is not None and np.shape(start) == params.shape and np.all(np.isfinite(start)):
             params = np.array(start, dtype=float)

@@ -12,18 +12,19 @@ from two_arm import two_arm_protocol
 
 from emulant import columns
 from emulant.estimation.per_protocol import (
-    _hazard,
-    _long,
     intervals,
     per_protocol_arrays,
     per_protocol_estimates,
+    period_weights,
 )
+from emulant.estimation.pooled_logistic import PooledLogistic, time_basis
 from emulant.estimation.sample import AnalysisSample
 from emulant.estimation.survival import aalen_johansen, aalen_johansen_intervals, step_at
 from emulant.models.treatment_process import adherence_weights, person_periods
 from emulant.models.weights import estimand_weights
 
 P = 30
+TIGHT = {"precision": 1e-12, "r_precision": 1e-14}  # lifelines' convergence criterion, tighter than its default
 
 
 @pytest.mark.filterwarnings("ignore:It looks like your weights")
@@ -72,29 +73,50 @@ def test_artificial_censoring_tie_keeps_the_outcome():
     np.testing.assert_array_equal(s, [1, 0, 2, 0])
 
 
-def test_long_person_periods_hand_computation():
-    # hand computation, P = 30, days at risk 1..d: d = 1 with an event -> period 0, 1 day;
-    # d = 58 -> 30 + 28 days; d = 61 with an event -> 30 + 30 + 1 days, the event in period 2
-    person, k, m, ev = _long(np.array([1.0, 58, 61]), np.array([True, False, True]), P, 12)
-    np.testing.assert_array_equal(person, [0, 1, 1, 2, 2, 2])
-    np.testing.assert_array_equal(k, [0, 0, 1, 0, 1, 2])
-    np.testing.assert_array_equal(m, [1, 30, 28, 30, 30, 1])
-    np.testing.assert_array_equal(ev, [1, 0, 0, 0, 0, 1])
-
-
-def test_weighted_pooled_hazard_equals_statsmodels_glm():
-    # reference: statsmodels GLM Binomial with non-integer var_weights (the weights over time)
+def test_hazard_with_weights_per_period_equals_statsmodels_glm():
+    # reference: statsmodels GLM Binomial on the explicit person-period table, each cell two
+    # rows (the event day, the other days at risk) with var_weights = weight x days; the weight
+    # of a person changes from period to period (the per-protocol standardization's model)
     rng = np.random.default_rng(9)
-    m = 3000
-    Z = np.column_stack([rng.integers(0, 2, m), rng.normal(size=(m, 2)), rng.integers(0, 12, m)])
-    eta = -2 + 0.5 * Z[:, 0] + Z[:, 1] - 0.1 * Z[:, 3]
-    y = rng.random(m) < 1 / (1 + np.exp(-eta))
-    w = rng.uniform(0.2, 4, m)
-    model = _hazard(Z, y, w, "outcome", problems := [])
-    ref = sm.GLM(y.astype(float), sm.add_constant(Z), family=sm.families.Binomial(),
-                 var_weights=w).fit(tol=1e-12)
-    np.testing.assert_allclose(np.r_[model.intercept_, model.coef_], ref.params, rtol=1e-6, atol=1e-8)
-    assert problems == []
+    n, K = 600, 8
+    x = rng.normal(size=(n, 2))
+    a = rng.integers(0, 2, n)
+    days = rng.integers(1, K * P + 1, n).astype(float)
+    event = rng.random(n) < 0.5
+    W = rng.uniform(0.2, 4, (n, K))
+    B = time_basis(K)  # 8 periods: a constant, k and a restricted cubic spline
+    model = PooledLogistic().fit(B, x, a, days, event, W, P)
+    assert model.converged_
+    rows = []
+    for i in range(n):
+        last = int(np.ceil(days[i] / P)) - 1
+        for k in range(last + 1):
+            m = min(P, days[i] - k * P)
+            y = bool(event[i]) and k == last
+            z = np.r_[B[k], a[i] * B[k], x[i]]
+            rows += [(z, 1.0, W[i, k] * y), (z, 0.0, W[i, k] * (m - y))]
+    Z = np.array([r[0] for r in rows])
+    y = np.array([r[1] for r in rows])
+    w = np.array([r[2] for r in rows])
+    keep = w > 0
+    ref = sm.GLM(y[keep], Z[keep], family=sm.families.Binomial(), var_weights=w[keep]).fit(tol=1e-12)
+    for g in (0, 1):
+        Zg = np.column_stack([np.tile(B, (n, 1)), g * np.tile(B, (n, 1)), np.repeat(x, K, axis=0)])
+        np.testing.assert_allclose(model.predict_hazard(x, g).ravel(), ref.predict(Zg), rtol=1e-6)
+    # weights per person and period that are equal across periods: the fit of weights per person
+    flat = PooledLogistic().fit(B, x, a, days, event, W[:, 0], P)
+    again = PooledLogistic().fit(B, x, a, days, event, np.repeat(W[:, :1], K, axis=1), P)
+    np.testing.assert_allclose(again.coef_, flat.coef_, rtol=1e-9, atol=1e-12)
+
+
+def test_period_weights_carry_the_last_row_on():
+    # hand-made: person 10 has rows for periods 0..2, person 11 for period 0 only
+    cohort = pd.DataFrame({"person_id": [10, 11], "deviation_day": [np.nan, np.nan]})
+    periods = pd.DataFrame({"person_id": [10, 10, 10, 11], "period": [0, 1, 2, 0],
+                            "start_day": [0, 30, 60, 0]})
+    pp = person_periods(cohort, periods, P)
+    W = period_weights(pp, np.array([1.0, 2.0, 3.0, 5.0]), 2, 5)
+    np.testing.assert_array_equal(W, [[1, 2, 3, 3, 3], [5, 5, 5, 5, 5]])
 
 
 # ------------------------------------------------- time-varying confounding with a known truth
@@ -179,15 +201,8 @@ def test_per_protocol_ipw_and_standardization_recover_the_simulated_truth():
     assert (exit_ > entry).all() and st.sum() == (per_protocol_arrays(cohort, "event")[1] == 1).sum()
 
 
-def test_estimate_effects_adds_per_protocol_rows_with_bootstrap_intervals():
-    # the whole estimation stage with periods.parquet: per-protocol rows beside the
-    # intention-to-treat ones, the point estimate equal to the estimator called directly, and
-    # bootstrap intervals that refit the weights over time in every replicate
-    from emulant.estimation.effects import estimate_effects
-
-    cohort, periods, _ = _simulate(1500, 4)
-    cohort["arm"] = np.where(cohort.treated == 1, "drug_a", "drug_b")
-    protocol = two_arm_protocol(
+def _e2e_protocol(replicates: int, hazard_ratio: bool = False):
+    return two_arm_protocol(
         "pp-e2e", extra_concepts={"marker": {"source": "measurements", "codes": ["MK1"]}},
         strategies={"arms": {"drug_a": {"initiate": "drug_a", "sustain": {"gap_days": 30}},
                              "drug_b": {"initiate": "drug_b", "sustain": {"gap_days": 30}}},
@@ -197,8 +212,19 @@ def test_estimate_effects_adds_per_protocol_rows_with_bootstrap_intervals():
         covariates=[{"name": "x", "attribute": "x"}],
         time_varying=[{"name": "marker", "concept": "marker", "window": [-30, 0], "summary": "last"}],
         analysis={"horizons_days": [HORIZON], "methods": ["ipw", "standardization"],
-                  "period_days": P, "hazard_ratio": False,
-                  "bootstrap": {"replicates": 12, "seed": 3}})
+                  "period_days": P, "hazard_ratio": hazard_ratio,
+                  "bootstrap": {"replicates": replicates, "seed": 3}})
+
+
+def test_estimate_effects_adds_per_protocol_rows_with_bootstrap_intervals():
+    # the whole estimation stage with periods.parquet: per-protocol rows beside the
+    # intention-to-treat ones, the point estimate equal to the estimator called directly, and
+    # bootstrap intervals that refit the weights over time in every replicate
+    from emulant.estimation.effects import estimate_effects
+
+    cohort, periods, _ = _simulate(1500, 4)
+    cohort["arm"] = np.where(cohort.treated == 1, "drug_a", "drug_b")
+    protocol = _e2e_protocol(replicates=12)
     res = estimate_effects(cohort, protocol, workers=1, progress=False, periods=periods)
     est = res.estimates
     pp_rows = est[(est.contrast == "per_protocol") & (est.measure != "e_value")]
@@ -208,3 +234,67 @@ def test_estimate_effects_adds_per_protocol_rows_with_bootstrap_intervals():
     assert res.bootstrap["failed"] == 0
     with pytest.raises(Exception, match="periods.parquet"):
         estimate_effects(cohort, protocol, workers=1, progress=False)
+
+
+@pytest.mark.filterwarnings("ignore:It looks like your weights")
+def test_periods_file_holds_the_weights_the_point_estimate_used():
+    # periods.parquet (CONTRACTS §5g) carries the weights over time of the point estimate:
+    # lifelines' KaplanMeierFitter (entry = left truncation, one weight per row) on its rows
+    # with weight_ipw_ATE gives the point estimate's ipw risks, and the estimators rerun on
+    # its weight columns give every per-protocol row back
+    from lifelines import CoxPHFitter, KaplanMeierFitter
+
+    from emulant.estimation.effects import _prepare, point_estimate
+    from emulant.estimation.sample import build_sample
+    from emulant.models.treatment_process import AdherenceWeights
+
+    cohort, periods, _ = _simulate(1500, 4)
+    cohort["arm"] = np.where(cohort.treated == 1, "drug_a", "drug_b")
+    protocol = _e2e_protocol(replicates=2, hazard_ratio=True)
+    point = point_estimate(cohort, protocol, periods)
+    weighted = point.periods
+    assert len(weighted) == len(periods)
+    assert {"weight_ipw_ATE", "weight_standardization_ATE"} <= set(weighted.columns)
+    assert set(point.adherence.estimand) == {"ATE"}
+    rows = pd.DataFrame(point.rows)
+    pp_rows = rows[rows.contrast == "per_protocol"]
+    end = cohort[columns.end_day("event")].to_numpy(float)
+    dev = cohort["deviation_day"].to_numpy(float)
+    cut = dev < end  # NaN compares False: no deviation
+    T = pd.Series(np.where(cut, dev, end), index=cohort.person_id)
+    event = pd.Series((cohort[columns.end_reason("event")] == "outcome").to_numpy() & ~cut,
+                      index=cohort.person_id)
+    arm = cohort.set_index("person_id").arm
+    w = weighted[weighted.start_day <= T.loc[weighted.person_id].to_numpy()].copy()
+    t_i = T.loc[w.person_id].to_numpy()
+    last = np.r_[w.person_id.to_numpy()[1:] != w.person_id.to_numpy()[:-1], True]
+    w["entry"] = w.start_day - 1.0
+    w["exit"] = np.where(last, t_i, np.minimum(w.start_day + P - 1, t_i))
+    w["event"] = last & event.loc[w.person_id].to_numpy()
+    for name in ("drug_a", "drug_b"):
+        g = w[arm.loc[w.person_id].to_numpy() == name]
+        km = KaplanMeierFitter().fit(g.exit, g.event, entry=g.entry, weights=g.weight_ipw_ATE)
+        ours = pp_rows[(pp_rows.method == "ipw") & (pp_rows.measure == "risk") & (pp_rows.arm == name)]
+        assert ours.estimate.iloc[0] == pytest.approx(1 - km.survival_function_at_times(HORIZON).iloc[0],
+                                                      abs=1e-10)
+    # the per-protocol hazard ratio: lifelines' CoxPHFitter on the same rows (entry_col, weights)
+    w["a"] = (arm.loc[w.person_id].to_numpy() == "drug_a").astype(float)
+    cox = CoxPHFitter().fit(w[["exit", "event", "a", "entry", "weight_ipw_ATE"]], "exit", "event",
+                            weights_col="weight_ipw_ATE", entry_col="entry", fit_options=TIGHT)
+    hr = pp_rows[(pp_rows.measure == "hazard_ratio") & (pp_rows.method == "ipw")].estimate
+    assert hr.iloc[0] == pytest.approx(np.exp(cox.params_["a"]), rel=1e-6)
+    # unadjusted: the artificially censored data, one row per person
+    crude = CoxPHFitter().fit(pd.DataFrame({"T": T.to_numpy(), "E": event.to_numpy(),
+                                            "a": cohort.treated.to_numpy(float)}), "T", "E",
+                            fit_options=TIGHT)
+    hr0 = pp_rows[(pp_rows.measure == "hazard_ratio") & (pp_rows.method == "unadjusted")].estimate
+    assert hr0.iloc[0] == pytest.approx(np.exp(crude.params_["a"]), rel=1e-6)
+    # every per-protocol row again from the file's weights
+    design, X, _, _ = _prepare(cohort, protocol)
+    sample = build_sample(cohort, protocol, design, X)
+    pp = person_periods(cohort, periods, P, protocol.time_varying, {"marker": "continuous"})
+    from_file = AdherenceWeights({"ATE": weighted.weight_ipw_ATE.to_numpy()},
+                                 {"ATE": weighted.weight_standardization_ATE.to_numpy()}, ())
+    again = pd.DataFrame(per_protocol_estimates(sample, pp, from_file, "event")[0])
+    np.testing.assert_allclose(again.estimate.to_numpy(float), pp_rows.estimate.to_numpy(float),
+                               rtol=1e-12, equal_nan=True)
