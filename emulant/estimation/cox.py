@@ -22,8 +22,11 @@ import pandas as pd
 from emulant.estimation.events import check_status, check_times
 
 
-def _efron(beta, x_sorted, w, d, starts, m_tied):
-    """Log partial likelihood, gradient and Hessian (Efron ties), as lifelines computes them."""
+def _efron(beta, x_sorted, w, d, starts, m_tied, late=None):
+    """Log partial likelihood, gradient and Hessian (Efron ties), as lifelines computes them.
+
+    ``late``: ``(order, cut)`` of rows entering late (counting-process data): the rows in
+    ``order[cut[j]:]`` enter on or after event time ``j`` and leave its risk set."""
     phi = w * np.exp(x_sorted @ beta)
     px = phi[:, None] * x_sorted
     pxx = px[:, :, None] * x_sorted[:, None, :]
@@ -34,6 +37,11 @@ def _efron(beta, x_sorted, w, d, starts, m_tied):
     r_phi = np.cumsum(g_phi[::-1])[::-1]
     r_px = np.cumsum(g_px[::-1], axis=0)[::-1]
     r_pxx = np.cumsum(g_pxx[::-1], axis=0)[::-1]
+    if late is not None:
+        order, cut = late
+        for r, v in ((r_phi, phi), (r_px, px), (r_pxx, pxx)):
+            s = np.cumsum(v[order][::-1], axis=0)[::-1]
+            r -= np.concatenate([s, np.zeros((1, *s.shape[1:]))])[cut]
     t_phi = np.add.reduceat(dphi, starts)
     t_px = np.add.reduceat(dpx, starts, axis=0)
     t_pxx = np.add.reduceat(dpxx, starts, axis=0)
@@ -57,7 +65,7 @@ def _efron(beta, x_sorted, w, d, starts, m_tied):
 
 
 def cox_fit(time, event, X, weight=None, freq=None, tol: float = 1e-10,
-            max_iter: int = 60) -> np.ndarray:
+            max_iter: int = 60, entry=None) -> np.ndarray:
     """Maximum weighted partial likelihood estimate of the Cox model's coefficients.
 
     .. math::
@@ -71,7 +79,9 @@ def cox_fit(time, event, X, weight=None, freq=None, tol: float = 1e-10,
     J Am Stat Assoc 72:557; the weighted form lifelines uses). Newton–Raphson with step halving.
     Frequency weights ``freq`` count as duplicated rows (a tied death with ``freq`` 2 is two tied
     deaths, :math:`m_j` counts them), other weights as lifelines' ``weights_col`` does; the
-    product of the two weights the rows.
+    product of the two weights the rows. ``entry`` (counting-process rows, e.g. a person's
+    periods with weights that change over time): a row is at risk at times ``t`` with
+    ``entry < t <= time`` (left truncation, lifelines' ``entry_col``).
 
     Parameters
     ----------
@@ -89,20 +99,25 @@ def cox_fit(time, event, X, weight=None, freq=None, tol: float = 1e-10,
     d = check_status(event, t.size, (0, 1)).astype(float)
     x = np.asarray(X, dtype=float).reshape(t.size, -1)
     keep = w * fr > 0
-    t, w, fr, d, x = t[keep], w[keep], fr[keep], d[keep], x[keep]
+    en = np.full(t.size, -np.inf) if entry is None else np.asarray(entry, dtype=float)
+    t, w, fr, d, x, en = t[keep], w[keep], fr[keep], d[keep], x[keep], en[keep]
     p = x.shape[1]
     if not np.any(d > 0):
         return np.full(p, np.nan)
     x = x - np.average(x, axis=0, weights=w * fr)
     order = np.argsort(t, kind="stable")
-    t, w, fr, d, x = t[order], w[order] * fr[order], fr[order], d[order], x[order]
+    t, w, fr, d, x, en = t[order], w[order] * fr[order], fr[order], d[order], x[order], en[order]
     starts = np.flatnonzero(np.r_[True, t[1:] != t[:-1]])
+    late = None
+    if entry is not None:
+        by_entry = np.argsort(en, kind="stable")
+        late = (by_entry, np.searchsorted(en[by_entry], t[starts], side="left"))
     # tied events as duplicated rows; real-valued person weights (the Bayesian bootstrap)
     # round to whole events, at least one where an event occurs
     tied = np.add.reduceat(d * fr, starts)
     m_tied = np.where(tied > 0, np.maximum(np.rint(tied), 1), 0).astype(int)
     beta = np.zeros(p)
-    ll, grad, hess = _efron(beta, x, w, d, starts, m_tied)
+    ll, grad, hess = _efron(beta, x, w, d, starts, m_tied, late)
     for _ in range(max_iter):
         try:
             step = np.linalg.solve(-hess, grad)
@@ -111,7 +126,7 @@ def cox_fit(time, event, X, weight=None, freq=None, tol: float = 1e-10,
         size = 1.0
         while True:
             new = beta + size * step
-            ll_new, g_new, h_new = _efron(new, x, w, d, starts, m_tied)
+            ll_new, g_new, h_new = _efron(new, x, w, d, starts, m_tied, late)
             if np.isfinite(ll_new) and ll_new >= ll - 1e-12 * abs(ll) or size < 1e-4:
                 break
             size /= 2

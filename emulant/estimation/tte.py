@@ -202,7 +202,7 @@ class OutcomeContext:
         hr = cox_hazard_ratio(self.time, self.status, self.a, w, freq=self.f)
         note = f"not estimable: {hr.not_estimable}" if hr.not_estimable else ""
         return _row(self.outcome, estimand, method, "hazard_ratio", None, self.arms[1],
-                    self.arms[0], hr.hr, hr.n, hr.events, note=note)
+                    self.arms[0], hr.hr, hr.n, hr.events, note=note, contrast=self.contrast)
 
     def aj_curves(self, w):
         """Weighted Aalen–Johansen cumulative incidence by arm on the grid and at horizons."""

@@ -167,6 +167,31 @@ def test_weighted_cox_matches_lifelines_weights_col(rossi):
     assert set(hr.to_dict()) <= set(hr.summary.columns)
 
 
+def test_cox_with_late_entry_matches_lifelines_entry_col(rossi):
+    # reference: lifelines CoxPHFitter(entry_col=, weights_col=) on counting-process rows: each
+    # Rossi person's weeks cut into spells of 10 weeks, each spell with its own weight (weights
+    # that change over time, as per protocol); tied exits (Efron) and spells entering at the
+    # same week as others leave
+    spell = np.minimum(rossi.week.to_numpy() // 10 + 1, 6)
+    person = np.repeat(np.arange(len(rossi)), spell)
+    k = np.arange(person.size) - np.repeat(np.cumsum(spell) - spell, spell)
+    last = k == spell[person] - 1
+    exit_ = np.where(last, rossi.week.to_numpy()[person], 10 * k + 10).astype(float)
+    entry = 10.0 * k
+    keep = exit_ > entry
+    event = (last & (rossi.arrest.to_numpy()[person] == 1)).astype(int)
+    w = np.random.default_rng(3).uniform(0.3, 3.0, person.size)
+    df = pd.DataFrame({"T": exit_, "E": event, "fin": rossi.fin.to_numpy()[person],
+                       "age": rossi.age.to_numpy()[person], "en": entry, "w": w})[keep]
+    ref = _quiet(CoxPHFitter().fit, df, "T", "E", weights_col="w", entry_col="en",
+                 fit_options=TIGHT)
+    beta = cox_fit(df["T"], df["E"], df[["fin", "age"]].to_numpy(), df["w"], entry=df["en"])
+    np.testing.assert_allclose(beta, ref.params_[["fin", "age"]].to_numpy(), atol=1e-6)
+    # one spell per person (entry before every time): the ordinary fit
+    whole = cox_fit(rossi.week, rossi.arrest, rossi.fin, entry=np.full(len(rossi), -1.0))
+    np.testing.assert_allclose(whole, cox_fit(rossi.week, rossi.arrest, rossi.fin), atol=1e-12)
+
+
 def test_cause_specific_hazard_ratio_censors_competing_events(rossi):
     # the cause-specific hazard ratio is the Cox model with competing events censored
     # (Putter, Fiocco & Geskus 2007, Stat Med 26:2389); reference: lifelines on recoded data
