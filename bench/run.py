@@ -6,8 +6,8 @@ import importlib
 import sys
 import time
 
-MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_weights", "bench_effects",
-           "bench_survival", "bench_scale", "bench_coverage", "bench_gformula",
+MODULES = ("bench_synth", "bench_cohort", "bench_person_time", "bench_per_protocol", "bench_weights",
+           "bench_effects", "bench_survival", "bench_scale", "bench_coverage", "bench_gformula",
            "bench_influence", "bench_sequential")
 
 

@@ -11,8 +11,10 @@ cohort.parquet (one row per person):
     coverage_end_day                          -- last day of the merged coverage period holding day 0
     stop_day, switch_day, deviation_day, deviation_reason   -- with per_protocol only (§5b)
     initiation_day                            -- design clone only (§5d): one row per person and arm
-periods.parquet: person_id, arm, period, start_day, deviated, each time-varying covariate (and
-    <name>_missing where its value may be missing) -- with per_protocol only (§5g).
+person_periods.parquet: person_id, arm, period, start_day, deviated, each time-varying covariate
+    (and <name>_missing where its value may be missing) -- with per_protocol only (§5g).
+periods.parquet: the same rows, then weight_<method>_<ESTIMAND> (method ipw | standardization)
+    for each estimand: the per-protocol weights over time the point estimate used.
 weights.parquet: person_id, arm, propensity, weight_<ESTIMAND> for each estimand of the protocol.
 """
 
@@ -65,3 +67,8 @@ INITIATION_DAY = "initiation_day"
 CLONE_REASONS = ("started_early", "not_started", "started", "stopped", "switched")
 # periods.parquet: one row per person and period under per-protocol follow-up
 PERIOD_COLUMNS = ("person_id", "arm", "period", "start_day", "deviated")
+
+
+def period_weight(method: str, estimand: str) -> str:
+    """periods.parquet: the weight over time of a per-protocol method (ipw | standardization)."""
+    return f"weight_{method}_{estimand}"

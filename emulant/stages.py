@@ -158,15 +158,16 @@ def _periods(input: Any) -> pd.DataFrame | None:
 
 def estimate_point(input: Any, output: Any, params: Any) -> None:
     from emulant.estimation.chunks import point_to_json
-    from emulant.estimation.effects import adherence_table, point_estimate
+    from emulant.estimation.effects import point_estimate
 
     protocol = load_protocol(_protocol_path(input))
-    cohort, periods = pd.read_parquet(input.cohort), _periods(input)
-    point = point_estimate(cohort, protocol, periods)
+    point = point_estimate(pd.read_parquet(input.cohort), protocol, _periods(input))
+    if getattr(output, "adherence", None):
+        write_csv(output.adherence, point.adherence)
+    if getattr(output, "periods", None):  # the person-periods with the weights used
+        write_parquet(output.periods, point.periods)
     with atomic(output.point) as tmp:
         tmp.write_text(point_to_json(point), encoding="utf-8")
-    if getattr(output, "adherence", None):
-        write_csv(output.adherence, adherence_table(cohort, protocol, periods))
 
 
 def bootstrap_chunk(input: Any, output: Any, params: Any) -> None:

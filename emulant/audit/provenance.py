@@ -31,7 +31,7 @@ PACKAGES = ("emulant", "snakemake", "duckdb", "pandas", "pyarrow", "numpy", "sci
             "lifelines", "scikit-learn", "jinja2", "matplotlib", "pydantic", "pyyaml")
 RESULT_FILES = ("extract_check.json", "attrition.csv", "cohort.parquet", "weights.parquet",
                 "positivity.json", "balance.csv", "estimates.csv", "curves.csv", "bootstrap.json",
-                "periods.parquet", "decision.csv", "adherence.csv")
+                "person_periods.parquet", "periods.parquet", "decision.csv", "adherence.csv")
 # What leaves the run folder, each in its shared form (emulant.audit.shareable). The curves (event
 # days), the balance table (SMDs that a suppressed count would give back) and the person-level
 # files stay in results/<study>/ only.

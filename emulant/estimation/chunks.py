@@ -19,6 +19,7 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -42,6 +43,9 @@ class PointEstimate:
     warnings: list[str]
     subgroups: list[dict] = field(default_factory=list)  # each level: estimable, reason
     starts: dict = field(default_factory=dict)  # outcome -> hazard model -> coefficients
+    # per protocol, written beside point.json by the estimate_point stage (not in point.json):
+    adherence: Any = None  # adherence.csv, the weights over time summarised (a DataFrame)
+    periods: Any = None  # periods.parquet, the person-periods with the weights used (a DataFrame)
 
 
 def default_chunks(replicates: int) -> int:

@@ -46,6 +46,7 @@ from emulant.estimation.per_protocol import (
     adherence_summary,
     per_protocol_estimates,
     sample_adherence,
+    weighted_periods,
 )
 from emulant.estimation.sample import (
     TREATED,
@@ -80,21 +81,22 @@ EffectsError = EstimationError  # the same class under the module's name
 
 
 def estimate_sample(sample: AnalysisSample, progress: Progress | None = None,
-                    person_time: PersonPeriods | None = None, problems: list | None = None
-                    ) -> tuple[list[dict], list[dict]]:
+                    person_time: PersonPeriods | None = None, problems: list | None = None,
+                    adherence: AdherenceWeights | None = None) -> tuple[list[dict], list[dict]]:
     """Every outcome of the protocol for one sample (the point estimate or one replicate).
 
     Returns ``(rows, curve_rows)``: estimates.csv rows without ``se, ci_low, ci_high`` and
     curves.csv rows without ``ci_low, ci_high``. ``progress`` is stepped once per outcome.
     With ``person_time`` (the per-protocol contrast) the weights over time are refitted with the
     sample's frequency weights and every time-to-event outcome gets its per-protocol rows too;
-    models that did not converge are appended to ``problems``.
+    models that did not converge are appended to ``problems``; ``adherence`` passes weights
+    over time already fitted on this sample.
     """
     rows: list[dict] = []
     curves: list[dict] = []
     outcomes = sample.protocol.outcomes
-    adherence = None
-    if person_time is not None:  # the weights over time serve ipw and standardization only
+    if adherence is None and person_time is not None:
+        # the weights over time serve ipw and standardization only
         weighted = {"ipw", "standardization"} & set(sample.protocol.analysis.methods)
         adherence = (sample_adherence(sample, person_time) if weighted
                      else AdherenceWeights({}, {}, ()))
@@ -255,7 +257,7 @@ def person_time_of(cohort: pd.DataFrame, protocol: Protocol,
     if not protocol.per_protocol:
         return None
     if periods is None:
-        raise EstimationError("contrasts: per_protocol needs periods.parquet (the person-periods)")
+        raise EstimationError("contrasts: per_protocol needs the person-periods (person_periods.parquet)")
     try:
         kinds = covariate_kinds(protocol, periods, protocol.time_varying)
         return person_periods(cohort, periods, protocol.analysis.period_days,
@@ -267,7 +269,11 @@ def person_time_of(cohort: pd.DataFrame, protocol: Protocol,
 def point_estimate(cohort: pd.DataFrame, protocol: Protocol,
                    periods: pd.DataFrame | None = None) -> PointEstimate:
     """Every outcome, estimand and method with unit frequency weights (no intervals yet), for
-    the whole cohort and each subgroup level."""
+    the whole cohort and each subgroup level.
+
+    Per protocol, the result also holds ``adherence`` (adherence.csv) and ``periods``
+    (periods.parquet: ``periods`` with the weights over time the estimators used); an
+    intention-to-treat protocol gets adherence.csv's header alone and no periods."""
     design, X, levels, account = _prepare(cohort, protocol)
     steps = Progress("point estimate (sample, each outcome, each subgroup level)",
                      1 + len(protocol.outcomes.all()) + len(levels))
@@ -275,8 +281,9 @@ def point_estimate(cohort: pd.DataFrame, protocol: Protocol,
     problems: list[str] = []
     try:
         point = build_sample(cohort, protocol, design, X, resampling_units(cohort)[1])
+        adherence = sample_adherence(point, person_time) if person_time is not None else None
         steps.step()
-        rows, curves = estimate_sample(point, steps, person_time, problems)
+        rows, curves = estimate_sample(point, steps, person_time, problems, adherence)
         if protocol.analysis.variance == "influence":
             attach_influence(point, rows, curves)
     except (SampleError, WeightsError) as exc:
@@ -297,19 +304,13 @@ def point_estimate(cohort: pd.DataFrame, protocol: Protocol,
     for w in (*point.warnings, *problems):
         log.warning("point estimate: %s", w)
     starts = {o: {k: [float(v) for v in c] for k, c in m.items()} for o, m in point.fitted.items()}
-    return PointEstimate(rows, curves, [*point.warnings, *problems], account, starts)
-
-
-def adherence_table(cohort: pd.DataFrame, protocol: Protocol,
-                    periods: pd.DataFrame) -> pd.DataFrame:
-    """The point estimate's weights over time summarised per estimand, arm and period
-    (``adherence.csv``; the header alone when the protocol does not ask for per protocol)."""
-    person_time = person_time_of(cohort, protocol, periods)
-    if person_time is None:
-        return pd.DataFrame(columns=list(ADHERENCE_COLUMNS))
-    design, X, _, _ = _prepare(cohort, protocol)
-    point = build_sample(cohort, protocol, design, X, resampling_units(cohort)[1])
-    return adherence_summary(point, person_time, sample_adherence(point, person_time))
+    result = PointEstimate(rows, curves, [*point.warnings, *problems], account, starts,
+                           adherence=pd.DataFrame(columns=list(ADHERENCE_COLUMNS)))
+    if adherence is not None:
+        result.adherence = adherence_summary(point, person_time, adherence)
+        result.periods = weighted_periods(periods, person_time, adherence,
+                                          protocol.analysis.methods)
+    return result
 
 
 def bootstrap_replicates(cohort: pd.DataFrame, protocol: Protocol, point: PointEstimate,

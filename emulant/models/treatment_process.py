@@ -87,6 +87,7 @@ class PersonPeriods:
     period_days: int
     values: np.ndarray | None = None  # the time-varying covariates as measured (rows x names), or None
     value_kinds: tuple[str, ...] = ()  # their kinds (continuous | binary), in the protocol's order
+    source_row: np.ndarray | None = None  # the row of the periods table each row comes from
 
     @property
     def first_row(self) -> np.ndarray:
@@ -141,7 +142,7 @@ def person_periods(cohort: pd.DataFrame, periods: pd.DataFrame, period_days: int
     if "categorical" not in vkinds:
         values = frame[list(names)].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=float)
     return PersonPeriods(pos, period, start, L, tuple(L_cols), on, deviates, K, period_days,
-                         values, vkinds)
+                         values, vkinds, order)
 
 
 def unit_keys(cohort: pd.DataFrame, periods: pd.DataFrame) -> list[str]:

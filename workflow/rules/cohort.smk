@@ -17,14 +17,15 @@ rule build_cohort:
         "../../scripts/build_cohort.py"
 
 
-# person-periods (CONTRACTS §5a, §5g): only when the protocol asks for per_protocol
+# person-periods (CONTRACTS §5a, §5g): only when the protocol asks for per_protocol; estimate_point
+# writes them again as periods.parquet with the weights over time it used
 rule build_periods:
     input:
         cohort=result("cohort.parquet"),
         tables=EXTRACT_FILES,
         protocol=PROTOCOL_FILES,
     output:
-        periods=result("periods.parquet"),
+        periods=result("person_periods.parquet"),
     params:
         duckdb=DUCKDB,
     resources:

@@ -39,8 +39,14 @@ def job_threads(wildcards, threads):
 
 
 def person_time_results():
-    """periods.parquet when the protocol asks for per_protocol, else nothing."""
-    return [result("periods.parquet")] if PER_PROTOCOL else []
+    """person_periods.parquet when the protocol asks for per_protocol, else nothing."""
+    return [result("person_periods.parquet")] if PER_PROTOCOL else []
+
+
+def weighted_periods_result():
+    """periods.parquet (the person-periods with their weights) when the protocol asks for
+    per_protocol, else nothing: an output of estimate_point."""
+    return {"periods": result("periods.parquet")} if PER_PROTOCOL else {}
 
 
 def mem_mb(rule):

@@ -10,6 +10,7 @@ rule estimate_point:
     output:
         point=result("bootstrap/point.json"),
         adherence=result("adherence.csv"),
+        **weighted_periods_result(),
     resources:
         mem_mb=mem_mb("estimate_point"),
         runtime=runtime("estimate_point"),
