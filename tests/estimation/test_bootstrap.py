@@ -187,7 +187,7 @@ def test_a_hazard_model_that_does_not_converge_fails_its_replicate(tmp_path, mon
     protocol = load_protocol(tmp_path / "protocol.yaml")
     outcomes = dataclasses.replace(protocol.outcomes, secondary=(), negative_controls=())
     boot = dataclasses.replace(protocol.analysis.bootstrap, replicates=4)
-    protocol = dataclasses.replace(protocol, outcomes=outcomes,
+    protocol = dataclasses.replace(protocol, outcomes=outcomes, contrasts=("intention_to_treat",),
                                    analysis=dataclasses.replace(protocol.analysis, bootstrap=boot))
     cohort = build_cohort(open_extract(tmp_path, protocol), protocol).cohort
     fit = gformula.PooledLogistic.fit

@@ -279,6 +279,7 @@ def test_synthetic_cohort_known_truth(tmp_path):
                                    for_decision=())
     boot = dataclasses.replace(protocol.analysis.bootstrap, replicates=20)
     protocol = dataclasses.replace(protocol, outcomes=outcomes, estimands=("ATE", "ATT"), decision=None,
+                                   contrasts=("intention_to_treat",),
                                    analysis=dataclasses.replace(protocol.analysis, bootstrap=boot))
     cohort = build_cohort(open_extract(tmp_path, protocol), protocol).cohort
     res = estimate_effects(cohort, protocol, workers=2, progress=False)
@@ -306,7 +307,8 @@ def test_time_to_event_outcomes_are_routed_in_protocol_order(tmp_path):
     generate.write_synthetic(tmp_path, 1500, 9, "parquet")
     protocol = load_protocol(tmp_path / "protocol.yaml")
     boot = dataclasses.replace(protocol.analysis.bootstrap, replicates=2)
-    protocol = dataclasses.replace(protocol, analysis=dataclasses.replace(protocol.analysis, bootstrap=boot))
+    protocol = dataclasses.replace(protocol, analysis=dataclasses.replace(protocol.analysis, bootstrap=boot),
+                                   contrasts=("intention_to_treat",))  # per protocol: its own tests
     cohort = build_cohort(open_extract(tmp_path, protocol), protocol).cohort
     res = estimate_effects(cohort, protocol, workers=1, progress=False)
     names = [outcome_name(o) for o in protocol.outcomes.all()]
