@@ -140,7 +140,11 @@ def standardized_incidence(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndar
     period :math:`k` weighted by the person's :math:`W_k` times their frequency; then
     :func:`emulant.estimation.pooled_logistic.gformula_incidence`. Each model's Newton's method
     starts from ``starts[key + name]`` when given (a replicate starts from the point estimate's
-    coefficients) and records its coefficients in ``fitted[key + name]``.
+    coefficients) and records its coefficients in ``fitted[key + name]``. A fit that does not
+    converge (separation: e.g. no event among the persons of a covariate level still on
+    protocol) is refitted with a light ridge penalty (lambda = 1 on the scaled arm and covariate
+    coefficients, as the propensity and treatment-process models do); only a refit that does
+    not converge either is a problem.
     """
     K = max(1, -(-int(c.max_days) // c.P))
     W = c.f[:, None] * period_weights(pp, w_rows, c.a.size, K)
@@ -149,8 +153,11 @@ def standardized_incidence(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndar
     models = {}
     for name in kinds:
         days, event = days_at_risk(t, c.status, name)
-        models[name] = PooledLogistic().fit(time_basis(K), c.X, c.a, days, event, W, c.P,
-                                            start=(starts or {}).get(key + name))
+        start = (starts or {}).get(key + name)
+        models[name] = PooledLogistic().fit(time_basis(K), c.X, c.a, days, event, W, c.P, start=start)
+        if not models[name].converged_:  # separation (e.g. no event in a covariate level)
+            models[name] = PooledLogistic(penalty=1.0).fit(time_basis(K), c.X, c.a, days, event,
+                                                           W, c.P)
         if fitted is not None:
             fitted[key + name] = models[name].coef_
         if not models[name].converged_:

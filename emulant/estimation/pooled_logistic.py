@@ -179,9 +179,10 @@ class PooledLogistic:
     coef_ : (gamma, alpha, beta) stacked; period_days_; n_iter_, converged_
     """
 
-    def __init__(self, max_iter: int = 50, tol: float = 1e-8):
+    def __init__(self, max_iter: int = 50, tol: float = 1e-8, penalty: float = 0.0):
         self.max_iter = max_iter
         self.tol = tol
+        self.penalty = penalty  # ridge on the arm and covariate coefficients (scaled columns)
 
     def _eta_parts(self, X, params):
         q = self.basis_.shape[1]
@@ -235,14 +236,24 @@ class PooledLogistic:
             self._newton(data, params)
         return self
 
-    def _newton(self, data: _Data, params: np.ndarray) -> None:
+    def _pass(self, data: _Data, params: np.ndarray):
         ll, grad, H = data.pass_(params)
+        if self.penalty > 0:  # every coefficient but the baseline hazard's (gamma)
+            q = data.B.shape[1]
+            pen = np.r_[np.zeros(q), np.full(params.size - q, self.penalty)]
+            ll -= 0.5 * float(pen @ (params * params))
+            grad = grad - pen * params
+            H = H + np.diag(pen)
+        return ll, grad, H
+
+    def _newton(self, data: _Data, params: np.ndarray) -> None:
+        ll, grad, H = self._pass(data, params)
         for it in range(1, self.max_iter + 1):
             d = np.sqrt(np.clip(np.diag(H), 1e-300, None))
             step = np.linalg.lstsq(H / np.outer(d, d), grad / d, rcond=None)[0] / d
             size = 1.0
             while True:  # step halving: Newton steps on the log-likelihood must not descend
-                new = data.pass_(params + size * step)
+                new = self._pass(data, params + size * step)
                 if new[0] >= ll - 1e-10 * abs(ll) or size < 1e-3:
                     break
                 size /= 2

@@ -298,3 +298,40 @@ def test_periods_file_holds_the_weights_the_point_estimate_used():
     again = pd.DataFrame(per_protocol_estimates(sample, pp, from_file, "event")[0])
     np.testing.assert_allclose(again.estimate.to_numpy(float), pp_rows.estimate.to_numpy(float),
                                rtol=1e-12, equal_nan=True)
+
+
+def test_ridge_refit_of_a_separated_hazard_maximises_the_penalised_likelihood():
+    # no event among persons with x = 1 (separation): the refit's coefficients maximise the
+    # explicit person-period binomial log-likelihood minus (1/2) * sum of squared arm and
+    # scaled covariate coefficients (scipy.optimize on the explicit table, an outside optimiser)
+    from scipy.optimize import minimize
+
+    rng = np.random.default_rng(1)
+    n, K = 300, 8
+    x = rng.integers(0, 2, (n, 1)).astype(float)
+    a = rng.integers(0, 2, n)
+    days = rng.integers(1, K * P + 1, n).astype(float)
+    event = (rng.random(n) < 0.4) & (x[:, 0] == 0)
+    W = rng.uniform(0.5, 2, (n, K))
+    B = time_basis(K)
+    model = PooledLogistic(penalty=1.0).fit(B, x, a, days, event, W, P)
+    assert model.converged_
+    z = (x - model.x_mean_) / model.x_scale_
+    rows = []
+    for i in range(n):
+        last = int(np.ceil(days[i] / P)) - 1
+        for k in range(last + 1):
+            m = min(P, days[i] - k * P)
+            y = bool(event[i]) and k == last
+            rows.append((np.r_[B[k], a[i] * B[k], z[i]], W[i, k] * y, W[i, k] * (m - y)))
+    Z = np.array([r[0] for r in rows])
+    wy, wn = np.array([r[1] for r in rows]), np.array([r[2] for r in rows])
+    pen = np.r_[np.zeros(B.shape[1]), np.ones(Z.shape[1] - B.shape[1])]
+
+    def negative(b):
+        eta = Z @ b
+        return -(wy @ -np.logaddexp(0, -eta) + wn @ -np.logaddexp(0, eta)) + 0.5 * pen @ (b * b)
+
+    ref = minimize(negative, np.zeros(Z.shape[1]), method="BFGS", options={"gtol": 1e-9})
+    np.testing.assert_allclose(model.coef_, ref.x, atol=2e-4)
+    assert negative(model.coef_) <= ref.fun + 1e-8
