@@ -131,7 +131,7 @@ def main() -> dict:
     print(f"  point estimate {e['point']:.1f} s ({e['rows'] / e['point']:,.0f} person-periods/s), "
           f"one replicate {e['replicate']:.1f} s, replicate / point {ratio:.2f}, "
           f"peak {e['peak_gib']:.2f} GiB")
-    print(f"  risk differences at 1095 days (point): "
+    print("  risk differences at 1095 days (point): "
           + ", ".join(f"{k} {v:+.4f}" for k, v in e["point_rd_1095"].items()))
     ok = e["point"] <= TARGET_S and e["peak_gib"] <= TARGET_GIB and ratio <= TARGET_RATIO
     print(f"  targets (point <= {TARGET_S:.0f} s, peak <= {TARGET_GIB:.0f} GiB, replicate <= "
