@@ -209,8 +209,7 @@ class PooledLogistic:
             raise SurvivalError(f"freq has shape {f.shape}: expected ({a.size},) or ({a.size}, {K})")
         days = np.minimum(np.floor(np.asarray(days, dtype=float)), K * period_days)
         self.basis_, self.period_days_ = B, int(period_days)
-        # per person: the weight (of period 0 with weights per period; only a person with
-        # frequency 0 has weight 0 there) that decides who is kept and centres the columns
+        # per person (period 0's with weights per period): who is kept, how columns are centred
         f_person = f if f.ndim == 1 else f[:, 0]
         self.x_mean_ = (np.average(X, axis=0, weights=f_person) if X.shape[1] and f_person.sum() > 0
                         else np.zeros(X.shape[1]))
@@ -239,8 +238,7 @@ class PooledLogistic:
     def _pass(self, data: _Data, params: np.ndarray):
         ll, grad, H = data.pass_(params)
         if self.penalty > 0:  # every coefficient but the baseline hazard's (gamma)
-            q = data.B.shape[1]
-            pen = np.r_[np.zeros(q), np.full(params.size - q, self.penalty)]
+            pen = np.r_[np.zeros(data.B.shape[1]), np.full(params.size - data.B.shape[1], self.penalty)]
             ll -= 0.5 * float(pen @ (params * params))
             grad = grad - pen * params
             H = H + np.diag(pen)
