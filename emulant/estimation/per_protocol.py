@@ -66,6 +66,18 @@ def per_protocol_arrays(cohort, outcome: str) -> tuple[np.ndarray, np.ndarray]:
     return np.where(cut, dev, time), np.where(cut, 0, status)
 
 
+def _row_of(pp: PersonPeriods, k: np.ndarray, person: np.ndarray) -> np.ndarray:
+    """Index of person's period row ``k`` in ``pp`` (the last one when ``k`` is past it)."""
+    first = np.flatnonzero(pp.first_row)
+    counts = np.diff(np.r_[first, pp.person.size])
+    slot = np.full(int(pp.person.max()) + 1 if pp.person.size else 0, -1)
+    slot[pp.person[first]] = np.arange(first.size)
+    j = slot[person]
+    if (j < 0).any():
+        raise SurvivalError(f"periods.parquet: cohort row {int(person[j < 0][0])} has no period")
+    return first[j] + np.minimum(k, counts[j] - 1)
+
+
 def intervals(pp: PersonPeriods, time: np.ndarray, status: np.ndarray):
     """Counting-process intervals (days ``start_day .. exit``) of the period rows up to ``time``.
 
@@ -98,6 +110,22 @@ def ipw_curves(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndarray):
         curves[g] = vals[: c.grid.size]
         risk[g] = dict(zip(c.horizons, vals[c.grid.size:], strict=True))
     return curves, risk
+
+
+def _long(days, event, P: int, K: int):
+    """Person-periods of a daily hazard model: ``(person, k, at_risk_days, event)`` per row.
+
+    A person at risk on days :math:`1..d` is at risk :math:`\\min(P, d - kP)` days of period
+    :math:`k` (days :math:`kP+1 .. (k+1)P`, the convention of
+    :mod:`emulant.estimation.pooled_logistic`); the event falls on day :math:`d`.
+    """
+    d = np.minimum(np.asarray(days, dtype=float), K * P)
+    n_rows = np.ceil(d / P).astype(int)
+    person = np.repeat(np.arange(d.size), n_rows)
+    k = np.arange(person.size) - np.repeat(np.cumsum(n_rows) - n_rows, n_rows)
+    m = np.clip(d[person] - k * P, 0, P)
+    ev = np.asarray(event, dtype=bool)[person] & (k == n_rows[person] - 1)
+    return person, k, m, ev
 
 
 def ipw_hazard_ratio(c: OutcomeContext, pp: PersonPeriods, w_rows: np.ndarray, estimand: str):

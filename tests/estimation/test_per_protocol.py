@@ -12,6 +12,7 @@ from two_arm import two_arm_protocol
 
 from emulant import columns
 from emulant.estimation.per_protocol import (
+    _long,
     intervals,
     per_protocol_arrays,
     per_protocol_estimates,
@@ -71,6 +72,16 @@ def test_artificial_censoring_tie_keeps_the_outcome():
     t, s = per_protocol_arrays(cohort, "event")
     np.testing.assert_array_equal(t, [50, 49, 50, 20])
     np.testing.assert_array_equal(s, [1, 0, 2, 0])
+
+
+def test_long_person_periods_hand_computation():
+    # hand computation, P = 30, days at risk 1..d: d = 1 with an event -> period 0, 1 day;
+    # d = 58 -> 30 + 28 days; d = 61 with an event -> 30 + 30 + 1 days, the event in period 2
+    person, k, m, ev = _long(np.array([1.0, 58, 61]), np.array([True, False, True]), P, 12)
+    np.testing.assert_array_equal(person, [0, 1, 1, 2, 2, 2])
+    np.testing.assert_array_equal(k, [0, 0, 1, 0, 1, 2])
+    np.testing.assert_array_equal(m, [1, 30, 28, 30, 30, 1])
+    np.testing.assert_array_equal(ev, [1, 0, 0, 0, 0, 1])
 
 
 def test_hazard_with_weights_per_period_equals_statsmodels_glm():
