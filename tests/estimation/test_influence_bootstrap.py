@@ -45,6 +45,7 @@ def _variant(protocol, outcome, methods, variance, replicates=0):
                              primary=dataclasses.replace(an.primary, method=methods[0]),
                              bootstrap=dataclasses.replace(an.bootstrap, replicates=replicates))
     return dataclasses.replace(protocol, outcomes=outcomes, analysis=an, decision=None,
+                               contrasts=("intention_to_treat",),
                                subgroups=(), estimands=("ATE", "ATT"))
 
 
