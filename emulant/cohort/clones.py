@@ -32,7 +32,6 @@ observational data", Int J Biostat 2010;6(2):18; the exact day rules are CONTRAC
 
 from __future__ import annotations
 
-import duckdb
 import pandas as pd
 
 from emulant import columns as C
@@ -40,6 +39,7 @@ from emulant.cohort.covariates import (
     CohortError,
     Planner,
     concept_condition,
+    duckdb_failures,
     lit,
     make_aggregates,
     q,
@@ -223,7 +223,7 @@ def build_clone_cohort(extract: Extract, protocol: Protocol, steps_only: bool = 
     """
     con, p = extract.con, protocol
     done = Progress("clone cohort (time zero, coverage, code windows, eligibility, clones, deviations)", 6)
-    try:
+    with duckdb_failures(extract, "building the clone cohort"):
         _make_init(con, extract, p)
         done.step()
         _make_coverage(con)
@@ -244,11 +244,3 @@ def build_clone_cohort(extract: Extract, protocol: Protocol, steps_only: bool = 
         done.step()
         done.close()
         return CohortResult(att, clones)
-    except duckdb.OutOfMemoryException as exc:
-        limit = con.execute("SELECT current_setting('memory_limit')").fetchone()[0]
-        raise CohortError(f"DuckDB ran out of memory building the clone cohort of {extract.path} "
-                          f"(memory_limit {limit}): raise duckdb.memory_limit or lower "
-                          f"duckdb.threads in the config ({str(exc).splitlines()[0]})") from None
-    except duckdb.Error as exc:
-        raise CohortError(f"building the clone cohort of {extract.path} failed in DuckDB: "
-                          f"{str(exc).splitlines()[0]}") from None

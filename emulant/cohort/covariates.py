@@ -10,9 +10,11 @@ covariate's kind from the data where the protocol left it open.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 
+import duckdb
 import numpy as np
 import pandas as pd
 
@@ -31,6 +33,22 @@ class CohortError(Exception):
                  attrition: pd.DataFrame | None = None):
         super().__init__(message)
         self.step, self.arm, self.attrition = step, arm, attrition
+
+
+@contextmanager
+def duckdb_failures(ex: Extract, what: str) -> Iterator[None]:
+    """A DuckDB failure while ``what`` (e.g. "building the cohort") becomes a CohortError naming the
+    extract; out of memory also names the config keys that help."""
+    try:
+        yield
+    except duckdb.OutOfMemoryException as exc:
+        limit = ex.con.execute("SELECT current_setting('memory_limit')").fetchone()[0]
+        raise CohortError(f"DuckDB ran out of memory {what} of {ex.path} (memory_limit {limit}): "
+                          "raise duckdb.memory_limit or lower duckdb.threads in the config "
+                          f"({str(exc).splitlines()[0]})") from None
+    except duckdb.Error as exc:
+        raise CohortError(f"{what} of {ex.path} failed in DuckDB: "
+                          f"{str(exc).splitlines()[0]}") from None
 
 
 CovariateError = CohortError  # the same class: a covariate the extract cannot give

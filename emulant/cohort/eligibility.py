@@ -23,7 +23,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import duckdb
 import pandas as pd
 
 from emulant import columns as C
@@ -32,6 +31,7 @@ from emulant.cohort.covariates import (
     Planner,
     age_sql,
     concept_condition,
+    duckdb_failures,
     finish_covariates,
     lit,
     make_aggregates,
@@ -195,23 +195,27 @@ def _plan_values(pl: Planner, p: Protocol, steps_only: bool) -> None:
 
 
 def _select_all(con, p: Protocol, pl: Planner, tables: list[str],
-                steps: list[tuple[str, str, str]]) -> None:
-    st = p.strategies
-    arm_idx = "CASE " + " ".join(f"WHEN day0_{i} THEN {i}" for i in range(len(st.arms))) + " END"
+                steps: list[tuple[str, str, str]], arm_idx: str | None = None,
+                init: str = "_c_init", cov: str = "_c_cov", keys: tuple[str, ...] = ()) -> None:
+    """``_c_all``: every candidate row of ``init`` (one per person, or per person and each of
+    ``keys``) with its arm, coverage, age, covariates, measured values and first failed step."""
+    if arm_idx is None:
+        arm_idx = "CASE " + " ".join(f"WHEN day0_{i} THEN {i}" for i in range(len(p.strategies.arms))) + " END"
+    on = "".join(f" AND {{t}}.{k} = i.{k}" for k in keys)
     sel = ["i.*", f"{arm_idx} AS arm_idx", "cv.cov_start_day", "cv.coverage_end_day",
            f"{age_sql('p.birth_date', 'i.time_zero')} AS age_years"]
     pcols = set(pl.ex.columns.get("persons", []))
-    for i, cov in enumerate(p.covariates):
-        if cov.attribute is not None and cov.attribute not in pcols:
-            raise CohortError(f"covariates ({cov.name}): table 'persons' has no column "
-                              f"'{cov.attribute}' (columns: {', '.join(sorted(pcols))})")
-        expr = person_covariate_sql(cov, "i.time_zero", "p")
+    for i, c in enumerate(p.covariates):
+        if c.attribute is not None and c.attribute not in pcols:
+            raise CohortError(f"covariates ({c.name}): table 'persons' has no column "
+                              f"'{c.attribute}' (columns: {', '.join(sorted(pcols))})")
+        expr = person_covariate_sql(c, "i.time_zero", "p")
         if expr is not None:
             sel.append(f"{expr} AS cv_{i}")
     joins = []
     zero = {f"cv_{i}" for i, c in enumerate(p.covariates) if zero_when_none(c.summary)}
     for t, plan in zip(tables, [x for x in pl.plans.values() if x.aggs], strict=True):
-        joins.append(f"LEFT JOIN {t} ON {t}.person_id = i.person_id")
+        joins.append(f"LEFT JOIN {t} ON {t}.person_id = i.person_id" + on.format(t=t))
         for a in plan.aggs:
             sel.append(f"coalesce({t}.{a}, 0) AS {a}" if a in zero else f"{t}.{a}")
     meas = []
@@ -225,8 +229,8 @@ def _select_all(con, p: Protocol, pl: Planner, tables: list[str],
         SELECT *, CASE {fail} ELSE NULL END AS first_fail FROM (
             SELECT *{''.join(', ' + x for x in meas)} FROM (
                 SELECT {', '.join(sel)}
-                FROM _c_init i LEFT JOIN persons p ON p.person_id = i.person_id
-                LEFT JOIN _c_cov cv ON cv.person_id = i.person_id {' '.join(joins)}))""")
+                FROM {init} i LEFT JOIN persons p ON p.person_id = i.person_id
+                LEFT JOIN {cov} cv ON cv.person_id = i.person_id{on.format(t="cv")} {' '.join(joins)}))""")
 
 
 # ----------------------------------------------------------------------------- attrition
@@ -353,7 +357,7 @@ def build_cohort(extract: Extract, protocol: Protocol, steps_only: bool = False)
         raise CohortError(f"strategies.design: design {p.strategies.design} is read by the protocol "
                           "but its cohort is not built yet in this version; use design initiators")
     done = Progress("cohort (time zero, coverage, code windows, eligibility, attrition, table)", 6)
-    try:
+    with duckdb_failures(extract, "building the cohort"):
         _make_init(con, extract, p)
         done.step()
         _make_coverage(con)
@@ -371,11 +375,3 @@ def build_cohort(extract: Extract, protocol: Protocol, steps_only: bool = False)
         done.step()
         done.close()
         return result
-    except duckdb.OutOfMemoryException as exc:
-        limit = con.execute("SELECT current_setting('memory_limit')").fetchone()[0]
-        raise CohortError(f"DuckDB ran out of memory building the cohort of {extract.path} "
-                          f"(memory_limit {limit}): raise duckdb.memory_limit or lower "
-                          f"duckdb.threads in the config ({str(exc).splitlines()[0]})") from None
-    except duckdb.Error as exc:
-        raise CohortError(f"building the cohort of {extract.path} failed in DuckDB: "
-                          f"{str(exc).splitlines()[0]}") from None

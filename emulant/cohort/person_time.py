@@ -41,13 +41,13 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import duckdb
 import pandas as pd
 
 from emulant import columns as C
 from emulant.cohort.covariates import (
     CohortError,
     concept_condition,
+    duckdb_failures,
     lit,
     q,
     summary_sql,
@@ -157,16 +157,8 @@ def _register(con, cohort: pd.DataFrame | str | Path) -> None:
 
 
 def _run(ex: Extract, what: str, fn):
-    try:
+    with duckdb_failures(ex, what):
         return fn()
-    except duckdb.OutOfMemoryException as exc:
-        limit = ex.con.execute("SELECT current_setting('memory_limit')").fetchone()[0]
-        raise CohortError(f"DuckDB ran out of memory {what} for {ex.path} (memory_limit {limit}): "
-                          "raise duckdb.memory_limit or lower duckdb.threads in the config "
-                          f"({str(exc).splitlines()[0]})") from None
-    except duckdb.Error as exc:
-        raise CohortError(f"{what} for {ex.path} failed in DuckDB: "
-                          f"{str(exc).splitlines()[0]}") from None
 
 
 def add_deviations(extract: Extract, protocol: Protocol, cohort: pd.DataFrame) -> pd.DataFrame:

@@ -35,23 +35,21 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 
-import duckdb
 import numpy as np
 import pandas as pd
 
 from emulant.cohort.covariates import (
     CohortError,
     Planner,
-    age_sql,
     concept_condition,
+    duckdb_failures,
     lit,
     make_aggregates,
     merged_coverage_sql,
-    person_covariate_sql,
     q,
-    zero_when_none,
 )
 from emulant.cohort.eligibility import CohortResult, _check_not_empty, _cohort_frame, _plan_steps
+from emulant.cohort.eligibility import _select_all as select_all
 from emulant.extract import Extract
 from emulant.progress import Progress
 from emulant.protocol import Protocol
@@ -149,34 +147,8 @@ def _steps(pl: Planner, p: Protocol, plan: TrialPlan, steps_only: bool):
 def _select_all(con, p: Protocol, plan: TrialPlan, pl: Planner, tables: list[str], steps) -> None:
     names = p.strategies.arm_names
     si, ni = names.index(plan.start_arm), names.index(plan.none_arm)
-    sel = ["i.*", f"CASE WHEN i.start_day IS NOT NULL THEN {si} ELSE {ni} END AS arm_idx",
-           "cv.cov_start_day", "cv.coverage_end_day",
-           f"{age_sql('p.birth_date', 'i.time_zero')} AS age_years"]
-    pcols = set(pl.ex.columns.get("persons", []))
-    for i, cov in enumerate(p.covariates):
-        if cov.attribute is not None and cov.attribute not in pcols:
-            raise CohortError(f"covariates ({cov.name}): table 'persons' has no column "
-                              f"'{cov.attribute}' (columns: {', '.join(sorted(pcols))})")
-        expr = person_covariate_sql(cov, "i.time_zero", "p")
-        if expr is not None:
-            sel.append(f"{expr} AS cv_{i}")
-    zero = {f"cv_{i}" for i, c in enumerate(p.covariates) if zero_when_none(c.summary)}
-    joins = []
-    for t, sp in zip(tables, [x for x in pl.plans.values() if x.aggs], strict=True):
-        joins.append(f"LEFT JOIN {t} ON {t}.person_id = i.person_id AND {t}.{TRIAL} = i.{TRIAL}")
-        sel += [f"coalesce({t}.{a}, 0) AS {a}" if a in zero else f"{t}.{a}" for a in sp.aggs]
-    meas = [f"mr_{j} - mb_{j} AS mv_{j}" if m.change_from_baseline else f"mr_{j} AS mv_{j}"
-            for j, m in enumerate(p.outcomes.measured())
-            if f"mr_{j}" in {a for sp in pl.plans.values() for a in sp.aggs}]
-    fail = " ".join(f"WHEN {sql} THEN {k}" for k, (_, _, sql) in enumerate(steps))
-    con.execute(f"""
-        CREATE OR REPLACE TEMP TABLE _c_all AS
-        SELECT *, CASE {fail} ELSE NULL END AS first_fail FROM (
-            SELECT *{''.join(', ' + x for x in meas)} FROM (
-                SELECT {', '.join(sel)}
-                FROM _s_init i LEFT JOIN persons p ON p.person_id = i.person_id
-                LEFT JOIN _s_cov cv ON cv.person_id = i.person_id AND cv.{TRIAL} = i.{TRIAL}
-                {' '.join(joins)}))""")
+    select_all(con, p, pl, tables, steps, f"CASE WHEN i.start_day IS NOT NULL THEN {si} ELSE {ni} END",
+               init="_s_init", cov="_s_cov", keys=(TRIAL,))
 
 
 def _attrition(con, p: Protocol, plan: TrialPlan, steps, starts: list[dt.date]):
@@ -251,7 +223,7 @@ def build_sequential(extract: Extract, protocol: Protocol, plan: TrialPlan,
         raise CohortError(f"eligibility.entry: no trial starts from {e.entry_start} to "
                           f"{e.entry_end}", step="person_trials")
     done = Progress("sequential trials (starts, coverage, code windows, eligibility, table)", 5)
-    try:
+    with duckdb_failures(extract, "building the sequential trials"):
         _make_init(con, extract, p, plan, len(starts))
         done.step()
         pl = Planner(extract, p)
@@ -276,6 +248,3 @@ def build_sequential(extract: Extract, protocol: Protocol, plan: TrialPlan,
         done.step()
         done.close()
         return CohortResult(att, cohort)
-    except duckdb.Error as exc:
-        raise CohortError(f"building the sequential trials of {extract.path} failed in DuckDB: "
-                          f"{str(exc).splitlines()[0]}") from None
