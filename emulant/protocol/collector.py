@@ -100,11 +100,7 @@ class Collector:
     def window(self, v: Any, key: str) -> tuple[int, int] | None:
         if v is None:
             return None
-        if (
-            not isinstance(v, list | tuple)
-            or len(v) != 2
-            or not all(isinstance(x, int) and not isinstance(x, bool) for x in v)
-        ):
+        if not _two_whole_numbers(v):
             self.add(key, f"expected a window [a, b] of two whole numbers of days, got {v!r}")
             return None
         if v[0] > v[1]:
@@ -119,11 +115,7 @@ class Collector:
         """``[a, b]``: a span of days on or after time zero, ``0 <= a <= b`` (a grace window)."""
         if v is None:
             return None
-        if (
-            not isinstance(v, list | tuple)
-            or len(v) != 2
-            or not all(isinstance(x, int) and not isinstance(x, bool) for x in v)
-        ):
+        if not _two_whole_numbers(v):
             self.add(key, f"expected [a, b], two whole numbers of days with 0 <= a <= b, got {v!r}")
             return None
         if not 0 <= v[0] <= v[1]:
@@ -137,3 +129,9 @@ class Collector:
             self.add(key, f"expected a list, got {type(v).__name__}")
             return []
         return v
+
+
+def _two_whole_numbers(v: Any) -> bool:
+    """``[a, b]`` of two whole numbers (booleans are not numbers here)."""
+    return (isinstance(v, list | tuple) and len(v) == 2
+            and all(isinstance(x, int) and not isinstance(x, bool) for x in v))
