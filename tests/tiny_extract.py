@@ -6,10 +6,15 @@ computation, written next to the rows that drive it.
 
 from __future__ import annotations
 
+import copy
+from collections.abc import Callable
 from pathlib import Path
 
 import pandas as pd
+import pytest
 import yaml
+
+from emulant.protocol import ProtocolError, load_protocol
 
 
 def tables() -> dict[str, pd.DataFrame]:
@@ -111,3 +116,20 @@ def write_extract(folder: Path, data: dict[str, pd.DataFrame] | None = None, fmt
         else:
             df.to_csv(folder / f"{name}.{fmt}", index=False)
     return folder
+
+
+def protocol_problems(folder: Path, edit: Callable[[dict], object],
+                      base: Callable[[], dict] = protocol_dict) -> list[str]:
+    """The problems a ``ProtocolError`` lists for ``base()`` changed by ``edit`` (it must fail)."""
+    d = copy.deepcopy(base())
+    edit(d)
+    with pytest.raises(ProtocolError) as info:
+        load_protocol(write_protocol(folder, d))
+    return info.value.problems
+
+
+def one_problem(problems: list[str], start: str) -> str:
+    """The one problem starting with ``start`` (fails when there are none or several)."""
+    hits = [p for p in problems if p.startswith(start)]
+    assert len(hits) == 1, problems
+    return hits[0]

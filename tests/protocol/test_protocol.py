@@ -11,7 +11,8 @@ import datetime as dt
 
 import pytest
 import yaml
-from tiny_extract import protocol_dict, write_extract, write_protocol
+from tiny_extract import one_problem as one
+from tiny_extract import protocol_dict, protocol_problems, write_extract, write_protocol
 
 from emulant import cli
 from emulant.extract import ExtractError, check_extract
@@ -19,17 +20,7 @@ from emulant.protocol import ProtocolError, load_protocol, parse_protocol
 
 
 def problems_of(tmp_path, edit) -> list[str]:
-    d = copy.deepcopy(protocol_dict())
-    edit(d)
-    with pytest.raises(ProtocolError) as info:
-        load_protocol(write_protocol(tmp_path, d))
-    return info.value.problems
-
-
-def one(problems: list[str], start: str) -> str:
-    hits = [p for p in problems if p.startswith(start)]
-    assert len(hits) == 1, problems
-    return hits[0]
+    return protocol_problems(tmp_path, edit)
 
 
 def test_fixture_is_valid(tmp_path):

@@ -8,9 +8,10 @@ from __future__ import annotations
 import copy
 
 import pytest
-from tiny_extract import protocol_dict, write_protocol
+from tiny_extract import one_problem as one
+from tiny_extract import protocol_dict, protocol_problems, write_protocol
 
-from emulant.protocol import ProtocolError, load_protocol
+from emulant.protocol import load_protocol
 from emulant.protocol.as_input import as_input
 
 
@@ -32,17 +33,7 @@ def sequential_dict() -> dict:
 
 
 def problems_of(tmp_path, base, edit) -> list[str]:
-    d = base()
-    edit(d)
-    with pytest.raises(ProtocolError) as info:
-        load_protocol(write_protocol(tmp_path, d))
-    return info.value.problems
-
-
-def one(problems: list[str], start: str) -> str:
-    hits = [p for p in problems if p.startswith(start)]
-    assert len(hits) == 1, problems
-    return hits[0]
+    return protocol_problems(tmp_path, edit, base)
 
 
 def test_clone_protocol_parses_with_its_defaults(tmp_path):

@@ -7,9 +7,10 @@ from __future__ import annotations
 import copy
 
 import pytest
-from tiny_extract import protocol_dict, write_protocol
+from tiny_extract import one_problem as one
+from tiny_extract import protocol_dict, protocol_problems, write_protocol
 
-from emulant.protocol import ProtocolError, load_protocol
+from emulant.protocol import load_protocol
 
 
 def per_protocol_dict() -> dict:
@@ -23,17 +24,7 @@ def per_protocol_dict() -> dict:
 
 
 def problems_of(tmp_path, edit) -> list[str]:
-    d = per_protocol_dict()
-    edit(d)
-    with pytest.raises(ProtocolError) as info:
-        load_protocol(write_protocol(tmp_path, d))
-    return info.value.problems
-
-
-def one(problems: list[str], start: str) -> str:
-    hits = [p for p in problems if p.startswith(start)]
-    assert len(hits) == 1, problems
-    return hits[0]
+    return protocol_problems(tmp_path, edit, per_protocol_dict)
 
 
 def test_per_protocol_protocol_parses_with_defaults(tmp_path):
